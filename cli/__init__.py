@@ -1,0 +1,1 @@
+"""Command-line interface (typer).  Each ``cmd_*.py`` module registers commands."""

@@ -1,0 +1,56 @@
+"""Entry point of the ``bos`` command.
+
+Commands live in ``cli/cmd_<name>.py`` modules; each defines
+``register(app: typer.Typer) -> None``.  They are discovered here, so new
+commands never need to edit this file.
+"""
+
+from __future__ import annotations
+
+import importlib
+import pkgutil
+
+import typer
+
+import cli
+
+app = typer.Typer(
+    name="bos",
+    help="Quantitative background-oriented schlieren: plan a rig, process photo pairs, "
+    "reconstruct density, temperature and sound pressure.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+_LOADED = False
+
+
+def _load_commands() -> None:
+    global _LOADED
+    if _LOADED:
+        return
+    for info in sorted(pkgutil.iter_modules(cli.__path__), key=lambda m: m.name):
+        if info.name.startswith("cmd_"):
+            module = importlib.import_module(f"cli.{info.name}")
+            module.register(app)
+    _LOADED = True
+
+
+@app.callback()
+def _root() -> None:
+    """Quantitative background-oriented schlieren toolkit."""
+
+
+def get_app() -> typer.Typer:
+    """Return the fully populated typer app (for tests: ``CliRunner().invoke(get_app(), ...)``)."""
+    _load_commands()
+    return app
+
+
+def main() -> None:
+    get_app()()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()
