@@ -1,0 +1,578 @@
+"""Experiment description: the TOML file schema, validation and overrides.
+
+An experiment file describes the camera, the geometry, the medium, the
+source (for safety cautions and planning), the images, the processing, the
+reconstruction and the outputs.  Every key carries its unit in its name
+(``focal_length_mm``, ``camera_to_background_m`` ...); inside the library
+everything is converted to SI.  Unknown keys, wrong types, missing values and
+out-of-range numbers raise :class:`bos.errors.ConfigError` with a one-line
+message naming the key.
+
+The full key list is in ``docs/experiment-file.md``; :data:`SCHEMA` below is
+the single source of truth for it.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Mapping
+
+from .errors import ConfigError, DataFileError
+
+# ---------------------------------------------------------------------------
+# Schema: section -> key -> Spec
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Spec:
+    """One key of the experiment file.
+
+    Attributes
+    ----------
+    kind : str
+        "float", "int", "str", "bool", "path", "list", "table" or "any".
+    default : object
+        Value used when the key is absent (``None`` = not set).
+    lo, hi : float, optional
+        Inclusive numeric range (checked for numbers).
+    positive : bool
+        Require a value > 0.
+    choices : tuple of str, optional
+        Allowed string values.
+    scale : float
+        Multiplier from the file unit to SI (e.g. 1e-3 for ``_mm`` keys).
+    target : str, optional
+        Name of the SI attribute in the section dataclass (defaults to key).
+    help : str
+        One-line description (used in the docs).
+    """
+
+    kind: str
+    default: Any = None
+    lo: float | None = None
+    hi: float | None = None
+    positive: bool = False
+    choices: tuple[str, ...] | None = None
+    scale: float = 1.0
+    target: str | None = None
+    help: str = ""
+
+
+SOURCE_KINDS = (
+    "none", "hot-air", "plume", "flame", "gas-jet", "compressed-gas",
+    "spark", "ultrasound", "shock", "other",
+)
+ILLUMINATION_KINDS = (
+    "ambient", "led", "high-power-led", "strobe", "flash", "laser", "arc-lamp", "screen",
+)
+
+SCHEMA: dict[str, dict[str, Spec]] = {
+    "camera": {
+        "focal_length_mm": Spec("float", positive=True, scale=1e-3, target="focal_length_m",
+                                help="lens focal length [mm]"),
+        "pixel_pitch_um": Spec("float", positive=True, scale=1e-6, target="pixel_pitch_m",
+                               help="sensor pixel pitch [um]"),
+        "f_number": Spec("float", 8.0, lo=0.5, hi=128.0, help="lens f-number N"),
+        "sensor_px": Spec("list", help="sensor size [rows, cols] in pixels"),
+        "wavelength_nm": Spec("float", 550.0, lo=300.0, hi=1700.0, scale=1e-9, target="wavelength_m",
+                              help="effective (vacuum) wavelength of the light [nm]"),
+        "model": Spec("str", help="camera model (free text)"),
+    },
+    "geometry": {
+        "camera_to_background_m": Spec("float", positive=True, target="z_b_m",
+                                       help="Z_B: lens to background distance [m]"),
+        "object_to_background_m": Spec("float", positive=True, target="z_d_m",
+                                       help="Z_D: object (mid-plane) to background distance [m]"),
+        "camera_to_object_m": Spec("float", positive=True, target="z_a_m",
+                                   help="Z_A: lens to object distance [m]"),
+        "object_width_mm": Spec("float", positive=True, scale=1e-3, target="object_width_m",
+                                help="object width along the line of sight (planar) or diameter [mm]"),
+    },
+    "medium": {
+        "gas": Spec("str", "air", help="gas name (air, n2, o2, co2, ar, he, h2, h2o, ch4, sf6, c3h8)"),
+        "composition": Spec("table", help="mole fractions of a mixture, e.g. {he = 0.5, air = 0.5}"),
+        "pressure_pa": Spec("float", 101325.0, lo=1.0e3, hi=1.0e7, help="static pressure [Pa]"),
+        "temperature_c": Spec("float", lo=-100.0, hi=2000.0, help="ambient temperature [degC]"),
+        "temperature_k": Spec("float", lo=173.15, hi=2273.15, help="ambient temperature [K]"),
+        "relative_humidity": Spec("float", 0.0, lo=0.0, hi=100.0, help="relative humidity [%]"),
+        "co2_ppm": Spec("float", 450.0, lo=0.0, hi=2000.0, help="CO2 content [umol/mol]"),
+    },
+    "source": {
+        "kind": Spec("str", "none", choices=SOURCE_KINDS, help="what makes the flow"),
+        "illumination": Spec("str", "ambient", choices=ILLUMINATION_KINDS, help="how the background is lit"),
+        "frequency_hz": Spec("float", positive=True, help="source frequency for periodic sources [Hz]"),
+        "description": Spec("str", help="free text"),
+    },
+    "plan": {
+        "noise_px": Spec("float", 0.05, positive=True, hi=5.0, help="displacement noise floor [px]"),
+        "window_px": Spec("int", 32, lo=4, hi=1024, help="final interrogation window [px]"),
+        "expected_deflection_rad": Spec("float", positive=True, help="largest expected deflection [rad]"),
+        "target_dt_k": Spec("float", positive=True, help="smallest temperature difference to resolve [K]"),
+        "target_spl_db": Spec("float", lo=0.0, hi=200.0, help="smallest sound level to resolve [dB re 20 uPa]"),
+        "solve_for": Spec("str", choices=("z_d", "focal_length", "f_number"),
+                          help="quantity to solve for in inverse design"),
+    },
+    "images": {
+        "reference": Spec("path", help="reference image (no flow)"),
+        "measurement": Spec("path", help="measurement image (with flow)"),
+        "mask": Spec("path", help="mask image: nonzero = no data"),
+        "mask_polygons": Spec("list", help="polygons [[[col, row], ...], ...] in pixels marking no-data areas"),
+        "frame": Spec("int", lo=0, help="frame index for multi-page TIFF or video"),
+        "reference_frame": Spec("int", lo=0, help="frame index of the reference in a video"),
+        "measurement_frame": Spec("int", lo=0, help="frame index of the measurement in a video"),
+    },
+    "processing": {
+        "method": Spec("str", "correlation", help="displacement estimator (correlation, flow)"),
+        "window_px": Spec("int", 64, lo=4, hi=1024, help="first-pass interrogation window [px]"),
+        "final_window_px": Spec("int", 16, lo=4, hi=1024, help="final interrogation window [px]"),
+        "passes": Spec("int", 3, lo=1, hi=10, help="number of correlation passes"),
+        "overlap": Spec("float", 0.5, lo=0.0, hi=0.9, help="window overlap fraction"),
+        "camera_motion": Spec("str", "border", choices=("none", "border", "mask"),
+                              help="global camera-motion removal: none, image border band, or outside the flow mask"),
+        "outlier_threshold": Spec("float", 2.0, positive=True, help="normalised median test threshold"),
+        "outlier_eps_px": Spec("float", 0.1, positive=True, help="normalised median test epsilon [px]"),
+    },
+    "reconstruction": {
+        "kind": Spec("str", "planar", choices=("planar", "axisymmetric", "none"),
+                     help="object model"),
+        "axis": Spec("str", "vertical", choices=("vertical", "horizontal"),
+                     help="orientation of the symmetry axis (axisymmetric)"),
+        "axis_px": Spec("float", help="symmetry-axis position in pixels (column for a vertical axis); omit to fit"),
+        "abel_method": Spec("str", "three_point", help="Abel inversion method"),
+        "boundary": Spec("str", "neumann", choices=("neumann", "dirichlet", "mixed"),
+                         help="boundary condition of the Poisson integration"),
+        "reference_region": Spec("any", "edges",
+                                 help="where the gas is ambient: 'edges', 'left', 'right', 'top', 'bottom' "
+                                      "or [row0, row1, col0, col1] in pixels"),
+        "weighted": Spec("bool", True, help="weight the least-squares integration by 1/sigma^2"),
+        "solver": Spec("str", "auto", help="Poisson solver (auto, dct, multigrid)"),
+    },
+    "output": {
+        "directory": Spec("path", "bos-output", help="output directory"),
+        "name": Spec("str", "result", help="base name of the result files"),
+        "figures": Spec("bool", True, help="write figures"),
+        "profile": Spec("list", help="profile line [[x0_mm, y0_mm], [x1_mm, y1_mm]] in object-plane mm"),
+    },
+}
+
+
+# ---------------------------------------------------------------------------
+# Section dataclasses (SI)
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CameraConfig:
+    focal_length_m: float | None = None
+    pixel_pitch_m: float | None = None
+    f_number: float = 8.0
+    sensor_px: tuple[int, int] | None = None
+    wavelength_m: float = 550e-9
+    model: str | None = None
+
+
+@dataclass(frozen=True)
+class GeometryConfig:
+    z_b_m: float | None = None
+    z_d_m: float | None = None
+    z_a_m: float | None = None
+    object_width_m: float | None = None
+
+
+@dataclass(frozen=True)
+class MediumConfig:
+    gas: str = "air"
+    composition: dict[str, float] | None = None
+    pressure_pa: float = 101325.0
+    temperature_k: float = 293.15
+    relative_humidity: float = 0.0
+    co2_ppm: float = 450.0
+
+
+@dataclass(frozen=True)
+class SourceConfig:
+    kind: str = "none"
+    illumination: str = "ambient"
+    frequency_hz: float | None = None
+    description: str | None = None
+
+
+@dataclass(frozen=True)
+class PlanConfig:
+    noise_px: float = 0.05
+    window_px: int = 32
+    expected_deflection_rad: float | None = None
+    target_dt_k: float | None = None
+    target_spl_db: float | None = None
+    solve_for: str | None = None
+
+
+@dataclass(frozen=True)
+class ImagesConfig:
+    reference: Path | None = None
+    measurement: Path | None = None
+    mask: Path | None = None
+    mask_polygons: list | None = None
+    frame: int | None = None
+    reference_frame: int | None = None
+    measurement_frame: int | None = None
+
+
+@dataclass(frozen=True)
+class ProcessingConfig:
+    method: str = "correlation"
+    window_px: int = 64
+    final_window_px: int = 16
+    passes: int = 3
+    overlap: float = 0.5
+    camera_motion: str = "border"
+    outlier_threshold: float = 2.0
+    outlier_eps_px: float = 0.1
+
+
+@dataclass(frozen=True)
+class ReconstructionConfig:
+    kind: str = "planar"
+    axis: str = "vertical"
+    axis_px: float | None = None
+    abel_method: str = "three_point"
+    boundary: str = "neumann"
+    reference_region: Any = "edges"
+    weighted: bool = True
+    solver: str = "auto"
+
+
+@dataclass(frozen=True)
+class OutputConfig:
+    directory: Path = Path("bos-output")
+    name: str = "result"
+    figures: bool = True
+    profile: list | None = None  # [[x0_m, y0_m], [x1_m, y1_m]] (SI after loading)
+
+
+_SECTION_CLASSES: dict[str, type] = {
+    "camera": CameraConfig,
+    "geometry": GeometryConfig,
+    "medium": MediumConfig,
+    "source": SourceConfig,
+    "plan": PlanConfig,
+    "images": ImagesConfig,
+    "processing": ProcessingConfig,
+    "reconstruction": ReconstructionConfig,
+    "output": OutputConfig,
+}
+
+
+@dataclass(frozen=True)
+class Experiment:
+    """A validated experiment description (SI units).
+
+    Build it with :func:`load_experiment` or :func:`experiment_from_dict`.
+    """
+
+    camera: CameraConfig = field(default_factory=CameraConfig)
+    geometry: GeometryConfig = field(default_factory=GeometryConfig)
+    medium: MediumConfig = field(default_factory=MediumConfig)
+    source: SourceConfig = field(default_factory=SourceConfig)
+    plan: PlanConfig = field(default_factory=PlanConfig)
+    images: ImagesConfig = field(default_factory=ImagesConfig)
+    processing: ProcessingConfig = field(default_factory=ProcessingConfig)
+    reconstruction: ReconstructionConfig = field(default_factory=ReconstructionConfig)
+    output: OutputConfig = field(default_factory=OutputConfig)
+    base_dir: Path = Path(".")
+    source_file: Path | None = None
+
+    def rig(self):
+        """The :class:`bos.optics.Rig` described by the camera and geometry sections."""
+        cam, geo = self.camera, self.geometry
+        missing = [k for k, v in (("camera.focal_length_mm", cam.focal_length_m),
+                                  ("camera.pixel_pitch_um", cam.pixel_pitch_m)) if v is None]
+        if missing:
+            raise ConfigError(f"missing value: {', '.join(missing)}")
+        given = sum(v is not None for v in (geo.z_a_m, geo.z_b_m, geo.z_d_m))
+        if given != 2:
+            raise ConfigError(
+                "geometry needs exactly two of camera_to_background_m, object_to_background_m, "
+                f"camera_to_object_m (got {given})"
+            )
+        from .optics import Rig
+
+        return Rig(
+            focal_length_m=cam.focal_length_m,
+            pixel_pitch_m=cam.pixel_pitch_m,
+            f_number=cam.f_number,
+            z_b_m=geo.z_b_m,
+            z_d_m=geo.z_d_m,
+            z_a_m=geo.z_a_m,
+            sensor_px=cam.sensor_px,
+            wavelength_m=cam.wavelength_m,
+        )
+
+    def medium_model(self):
+        """The :class:`bos.media.Medium` described by the medium section."""
+        from .media import Medium
+
+        med = self.medium
+        return Medium(
+            gas=med.gas,
+            wavelength_m=self.camera.wavelength_m,
+            pressure_pa=med.pressure_pa,
+            temperature_k=med.temperature_k,
+            relative_humidity=med.relative_humidity / 100.0,
+            co2_ppm=med.co2_ppm,
+            composition=dict(med.composition) if med.composition else None,
+        )
+
+    def resolve(self, path: Path | None) -> Path | None:
+        """Resolve a path from the file relative to the file's directory."""
+        if path is None:
+            return None
+        p = Path(path).expanduser()
+        return p if p.is_absolute() else (self.base_dir / p)
+
+
+# ---------------------------------------------------------------------------
+# Validation
+# ---------------------------------------------------------------------------
+
+
+def _type_name(value: Any) -> str:
+    return type(value).__name__
+
+
+def _convert(section: str, key: str, spec: Spec, value: Any) -> Any:
+    where = f"{section}.{key}"
+    if spec.kind in ("float", "int"):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"{where} must be a number, got {_type_name(value)} {value!r}")
+        if spec.kind == "int":
+            if isinstance(value, float) and not value.is_integer():
+                raise ConfigError(f"{where} must be a whole number, got {value!r}")
+            value = int(value)
+        else:
+            value = float(value)
+        if not math.isfinite(value):
+            raise ConfigError(f"{where} must be finite, got {value!r}")
+        if spec.positive and value <= 0:
+            raise ConfigError(f"{where} must be > 0, got {value!r}")
+        if spec.lo is not None and value < spec.lo:
+            raise ConfigError(f"{where} must be >= {spec.lo:g}, got {value!r}")
+        if spec.hi is not None and value > spec.hi:
+            raise ConfigError(f"{where} must be <= {spec.hi:g}, got {value!r}")
+        return value * spec.scale if spec.kind == "float" else value
+    if spec.kind == "str":
+        if not isinstance(value, str):
+            raise ConfigError(f"{where} must be a string, got {_type_name(value)} {value!r}")
+        if spec.choices is not None and value not in spec.choices:
+            raise ConfigError(f"{where} must be one of {', '.join(spec.choices)}; got {value!r}")
+        return value
+    if spec.kind == "path":
+        if not isinstance(value, str) or not value:
+            raise ConfigError(f"{where} must be a file path string, got {value!r}")
+        return Path(value)
+    if spec.kind == "bool":
+        if not isinstance(value, bool):
+            raise ConfigError(f"{where} must be true or false, got {value!r}")
+        return value
+    if spec.kind == "list":
+        if not isinstance(value, (list, tuple)):
+            raise ConfigError(f"{where} must be a list, got {_type_name(value)} {value!r}")
+        return list(value)
+    if spec.kind == "table":
+        if not isinstance(value, Mapping):
+            raise ConfigError(f"{where} must be a table, got {_type_name(value)} {value!r}")
+        return dict(value)
+    return value
+
+
+def _check_sensor(value: list) -> tuple[int, int]:
+    if len(value) != 2 or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in value):
+        raise ConfigError(f"camera.sensor_px must be [rows, cols] positive integers, got {value!r}")
+    return int(value[0]), int(value[1])
+
+
+def _check_composition(value: dict) -> dict[str, float]:
+    out: dict[str, float] = {}
+    for gas, frac in value.items():
+        if isinstance(frac, bool) or not isinstance(frac, (int, float)) or not (0.0 <= frac <= 1.0):
+            raise ConfigError(f"medium.composition.{gas} must be a mole fraction in [0, 1], got {frac!r}")
+        out[str(gas)] = float(frac)
+    total = sum(out.values())
+    if not out or abs(total - 1.0) > 1e-6:
+        raise ConfigError(f"medium.composition mole fractions must sum to 1, got {total:g}")
+    return out
+
+
+def _check_profile(value: list) -> list:
+    try:
+        (x0, y0), (x1, y1) = value
+        pts = [[float(x0) * 1e-3, float(y0) * 1e-3], [float(x1) * 1e-3, float(y1) * 1e-3]]
+    except (TypeError, ValueError):
+        raise ConfigError(f"output.profile must be [[x0_mm, y0_mm], [x1_mm, y1_mm]], got {value!r}") from None
+    if pts[0] == pts[1]:
+        raise ConfigError("output.profile start and end points are the same")
+    return pts
+
+
+def _check_polygons(value: list) -> list:
+    polys = []
+    for i, poly in enumerate(value):
+        try:
+            pts = [(float(c), float(r)) for c, r in poly]
+        except (TypeError, ValueError):
+            raise ConfigError(f"images.mask_polygons[{i}] must be a list of [col, row] points") from None
+        if len(pts) < 3:
+            raise ConfigError(f"images.mask_polygons[{i}] needs at least 3 points, got {len(pts)}")
+        polys.append(pts)
+    return polys
+
+
+def _check_reference_region(value: Any) -> Any:
+    names = ("edges", "left", "right", "top", "bottom")
+    if isinstance(value, str):
+        if value not in names:
+            raise ConfigError(f"reconstruction.reference_region must be one of {', '.join(names)} "
+                              f"or [row0, row1, col0, col1]; got {value!r}")
+        return value
+    if (isinstance(value, list) and len(value) == 4
+            and all(isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in value)):
+        r0, r1, c0, c1 = value
+        if r1 <= r0 or c1 <= c0:
+            raise ConfigError(f"reconstruction.reference_region is empty: {value!r}")
+        return tuple(value)
+    raise ConfigError(f"reconstruction.reference_region must be a name or [row0, row1, col0, col1], got {value!r}")
+
+
+_POST: dict[tuple[str, str], Callable[[Any], Any]] = {
+    ("camera", "sensor_px"): _check_sensor,
+    ("medium", "composition"): _check_composition,
+    ("output", "profile"): _check_profile,
+    ("images", "mask_polygons"): _check_polygons,
+    ("reconstruction", "reference_region"): _check_reference_region,
+}
+
+
+def _build_section(name: str, table: Mapping[str, Any]) -> Any:
+    specs = SCHEMA[name]
+    if not isinstance(table, Mapping):
+        raise ConfigError(f"[{name}] must be a table")
+    unknown = sorted(set(table) - set(specs))
+    if unknown:
+        raise ConfigError(f"unknown key in [{name}]: {', '.join(unknown)} (known: {', '.join(specs)})")
+    kwargs: dict[str, Any] = {}
+    for key, spec in specs.items():
+        if key not in table:
+            continue
+        value = _convert(name, key, spec, table[key])
+        post = _POST.get((name, key))
+        if post is not None:
+            value = post(value)
+        kwargs[spec.target or key] = value
+    if name == "medium":
+        if "temperature_c" in kwargs and "temperature_k" in kwargs:
+            raise ConfigError("[medium] give temperature_c or temperature_k, not both")
+        if "temperature_c" in kwargs:
+            kwargs["temperature_k"] = kwargs.pop("temperature_c") + 273.15
+        if kwargs.get("composition") and "gas" in table:
+            raise ConfigError("[medium] give gas or composition, not both")
+    cls = _SECTION_CLASSES[name]
+    fields = {f.name for f in dataclasses.fields(cls)}
+    return cls(**{k: v for k, v in kwargs.items() if k in fields})
+
+
+def experiment_from_dict(data: Mapping[str, Any], *, base_dir: str | Path = ".",
+                         source_file: str | Path | None = None) -> Experiment:
+    """Validate a parsed experiment mapping and return an :class:`Experiment`.
+
+    Raises
+    ------
+    ConfigError
+        Unknown section or key, wrong type, out-of-range value.
+    """
+    unknown = sorted(set(data) - set(SCHEMA))
+    if unknown:
+        raise ConfigError(f"unknown section: {', '.join(unknown)} (known: {', '.join(SCHEMA)})")
+    sections = {name: _build_section(name, data.get(name, {})) for name in SCHEMA}
+    return Experiment(**sections, base_dir=Path(base_dir),
+                      source_file=Path(source_file) if source_file else None)
+
+
+def _set_dotted(data: dict, dotted: str, value: Any) -> None:
+    try:
+        section, key = dotted.split(".", 1)
+    except ValueError:
+        raise ConfigError(f"override must be 'section.key', got {dotted!r}") from None
+    data.setdefault(section, {})
+    if not isinstance(data[section], dict):
+        raise ConfigError(f"[{section}] must be a table")
+    data[section][key] = value
+
+
+def load_experiment(path: str | Path | None = None, *,
+                    overrides: Mapping[str, Any] | None = None,
+                    base_dir: str | Path | None = None) -> Experiment:
+    """Read, merge and validate an experiment TOML file.
+
+    Parameters
+    ----------
+    path : path-like, optional
+        TOML file. ``None`` starts from defaults (all values from ``overrides``).
+    overrides : mapping, optional
+        ``{"section.key": value}`` in file units (e.g. ``"camera.focal_length_mm": 85``);
+        ``None`` values are ignored. Command-line options use this, so they win.
+    base_dir : path-like, optional
+        Directory for relative paths (default: the file's directory, or the
+        current directory without a file).
+
+    Raises
+    ------
+    DataFileError
+        The file is missing or unreadable.
+    ConfigError
+        TOML syntax error, unknown key, wrong type or range.
+    """
+    data: dict[str, Any] = {}
+    if path is not None:
+        p = Path(path)
+        if not p.is_file():
+            raise DataFileError(f"experiment file not found: {p}")
+        try:
+            text = p.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise DataFileError(f"cannot read experiment file {p}: {exc}") from None
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"experiment file {p} is not valid TOML: {exc}") from None
+        if base_dir is None:
+            base_dir = p.parent
+    for dotted, value in (overrides or {}).items():
+        if value is not None:
+            _set_dotted(data, dotted, value)
+    return experiment_from_dict(data, base_dir=base_dir or ".", source_file=path)
+
+
+def schema_markdown() -> str:
+    """Render the schema as Markdown tables (used to write docs/experiment-file.md)."""
+    lines: list[str] = []
+    for name, specs in SCHEMA.items():
+        lines += [f"### [{name}]", "", "| key | type | default | allowed | meaning |", "|---|---|---|---|---|"]
+        for key, s in specs.items():
+            allowed = []
+            if s.choices:
+                allowed.append(", ".join(s.choices))
+            if s.positive:
+                allowed.append("> 0")
+            if s.lo is not None:
+                allowed.append(f">= {s.lo:g}")
+            if s.hi is not None:
+                allowed.append(f"<= {s.hi:g}")
+            default = "" if s.default is None else f"`{s.default}`"
+            lines.append(f"| `{key}` | {s.kind} | {default} | {'; '.join(allowed)} | {s.help} |")
+        lines.append("")
+    return "\n".join(lines)
