@@ -264,12 +264,18 @@ def evaluate_displacement(displacement: Any, *, shape: tuple[int, int], strip_ro
     return dy, dx
 
 
-def _lipschitz(dy: np.ndarray, dx: np.ndarray) -> float:
-    """Max-norm bound of the displacement Jacobian from neighbour differences."""
-    def maxdiff(a: np.ndarray, axis: int) -> float:
-        return float(np.abs(np.diff(a, axis=axis)).max()) if a.shape[axis] > 1 else 0.0
-
-    return max(maxdiff(dy, 0) + maxdiff(dy, 1), maxdiff(dx, 0) + maxdiff(dx, 1))
+def _lipschitz(dy: np.ndarray, dx: np.ndarray, strip_rows: int = 256) -> float:
+    """Max-norm bound of the displacement Jacobian from neighbour differences (row strips)."""
+    g = np.zeros((2, 2))  # g[i, j] = max |d(component i) / d(axis j)|
+    rows = dy.shape[0]
+    for i, a in enumerate((dy, dx)):
+        for r0 in range(0, rows, strip_rows):
+            blk = a[r0 : r0 + strip_rows + 1]
+            if blk.shape[0] > 1:
+                g[i, 0] = max(g[i, 0], float(np.abs(np.diff(blk, axis=0)).max()))
+            if blk.shape[1] > 1:
+                g[i, 1] = max(g[i, 1], float(np.abs(np.diff(blk, axis=1)).max()))
+    return float(g.sum(axis=1).max())
 
 
 # ---------------------------------------------------------------------------
@@ -419,6 +425,7 @@ def render(
     full_well: float = 20000.0,
     read_noise: float = 5.0,
     quantize: bool = True,
+    dtype: Any = np.float64,
 ) -> np.ndarray:
     """Render a camera image of the background seen through a displacement field.
 
@@ -462,10 +469,13 @@ def render(
     quantize : bool
         Round to integer counts.  Values are clipped to [0, full scale]
         (saturation) whenever noise or quantisation is applied.
+    dtype : numpy float dtype
+        float64 (default) or float32 (halves the memory of large images;
+        integer counts up to 16 bit are exact in float32).
 
     Returns
     -------
-    ndarray of float64, shape ``shape``, in counts.
+    ndarray of ``dtype``, shape ``shape``, in counts.
 
     Raises
     ------
@@ -492,6 +502,9 @@ def render(
         raise InputError(f"camera_shift must be a pair (dy, dx) in px, got {camera_shift!r}") from None
     if not all(math.isfinite(s) for s in shift):
         raise InputError(f"camera_shift must be finite, got {camera_shift!r}")
+    out_dtype = np.dtype(dtype)
+    if out_dtype not in (np.dtype(np.float32), np.dtype(np.float64)):
+        raise InputError(f"dtype must be float32 or float64, got {dtype!r}")
     fw = _check_finite_positive(full_well, "full_well")
     rn = _check_finite_positive(read_noise, "read_noise", allow_zero=True)
 
@@ -505,7 +518,7 @@ def render(
             raise InputError(
                 f"displacement gradient too large ({gbound:.3g} px/px >= 0.5): the mapping folds; use a smoother or weaker field"
             )
-        max_d = float(np.sqrt((dy + shift[0]) ** 2 + (dx + shift[1]) ** 2).max())
+        max_d = max(float(np.hypot(dy[r0 : r0 + 256] + shift[0], dx[r0 : r0 + 256] + shift[1]).max()) for r0 in range(0, rows, 256))
         if float(np.ptp(dy)) == 0.0 and float(np.ptp(dx)) == 0.0:
             shift = (shift[0] + float(dy.flat[0]), shift[1] + float(dx.flat[0]))
             disp, gbound = None, 0.0
@@ -520,24 +533,29 @@ def render(
             "make the background with a larger margin_px"
         )
 
-    image = np.zeros((rows, cols))
+    image = np.zeros((rows, cols), dtype=out_dtype)
     _splat(image, background, sigma, (sigma0 / sigma) ** 2, disp, shift, gbound)
-    image += background.base
-
-    full = float(2**bits - 1)
-    if noise:
-        rng = np.random.default_rng(seed)
-        electrons = rng.poisson(np.clip(image, 0.0, None) * fw).astype(float)
-        if rn > 0:
-            electrons += rng.normal(0.0, rn, size=electrons.shape)
-        image = electrons * (full / fw)
-    else:
-        image *= full
-    if noise or quantize:
-        if quantize:
-            np.rint(image, out=image)
-        np.clip(image, 0.0, full, out=image)
+    _camera(image, base=background.base, full=float(2**bits - 1), noise=noise, quantize=quantize, seed=seed, full_well=fw, read_noise=rn)
     return image
+
+
+def _camera(image: np.ndarray, *, base: float, full: float, noise: bool, quantize: bool, seed: int | None, full_well: float, read_noise: float, strip_rows: int = 256) -> None:
+    """In place: intensity (fraction of full scale) -> counts with noise, saturation, rounding (row strips)."""
+    rng = np.random.default_rng(seed) if noise else None
+    for r0 in range(0, image.shape[0], strip_rows):
+        strip = image[r0 : r0 + strip_rows]
+        strip += base
+        if rng is not None:
+            electrons = rng.poisson(np.clip(strip, 0.0, None) * full_well).astype(float)
+            if read_noise > 0:
+                electrons += rng.normal(0.0, read_noise, size=electrons.shape)
+            strip[...] = electrons * (full / full_well)
+        else:
+            strip *= full
+        if noise or quantize:
+            if quantize:
+                np.rint(strip, out=strip)
+            np.clip(strip, 0.0, full, out=strip)
 
 
 # ---------------------------------------------------------------------------
@@ -582,6 +600,7 @@ def render_pair(
     full_well: float = 20000.0,
     read_noise: float = 5.0,
     quantize: bool = True,
+    dtype: Any = np.float64,
 ) -> SyntheticPair:
     """Render a reference image and a measurement image through ``displacement``.
 
@@ -598,17 +617,24 @@ def render_pair(
     disp = evaluate_displacement(displacement, shape=(rows, cols))
     if disp is None:
         disp = (np.zeros((rows, cols)), np.zeros((rows, cols)))
-    dy = disp[0] + float(camera_shift[0])
-    dx = disp[1] + float(camera_shift[1])
+    try:
+        cs = (float(camera_shift[0]), float(camera_shift[1]))
+    except (TypeError, ValueError, IndexError):
+        raise InputError(f"camera_shift must be a pair (dy, dx) in px, got {camera_shift!r}") from None
+    # the truth includes the camera shift (new arrays only when it is non-zero)
+    dy = disp[0] + cs[0] if cs[0] else disp[0]
+    dx = disp[1] + cs[1] if cs[1] else disp[1]
+    del disp
     if margin_px is None:
         diameter = _check_finite_positive(dot_diameter_px, "dot_diameter_px")
         blur = _check_finite_positive(blur_px, "blur_px", allow_zero=True)
         reach = 0.5 + TRUNC_SIGMAS * math.hypot(diameter, blur) / 4.0
-        margin_px = max(16.0 + 2.0 * diameter, math.ceil(float(np.sqrt(dy**2 + dx**2).max()) + reach + 2.0))
+        dmax = max(float(np.hypot(dy[r0 : r0 + 256], dx[r0 : r0 + 256]).max()) for r0 in range(0, rows, 256))
+        margin_px = max(16.0 + 2.0 * diameter, math.ceil(dmax + reach + 2.0))
     bg = random_dots(shape=(rows, cols), dot_diameter_px=dot_diameter_px, density=density, contrast=contrast, seed=seed, margin_px=margin_px)
     common = dict(noise=noise, bit_depth=bit_depth, blur_px=blur_px, full_well=full_well, read_noise=read_noise, quantize=quantize)
-    ref = render(bg, seed=None if seed is None else seed + 1, **common)
-    meas = render(bg, displacement=(dy, dx), seed=None if seed is None else seed + 2, **common)
+    ref = render(bg, seed=None if seed is None else seed + 1, dtype=dtype, **common)
+    meas = render(bg, displacement=(dy, dx), seed=None if seed is None else seed + 2, dtype=dtype, **common)
     meta = dict(
         shape=[rows, cols],
         dot_diameter_px=float(dot_diameter_px),
@@ -617,7 +643,7 @@ def render_pair(
         seed=seed,
         n_dots=bg.n_dots,
         margin_px=float(bg.margin_px),
-        camera_shift=[float(camera_shift[0]), float(camera_shift[1])],
+        camera_shift=list(cs),
         **common,
     )
     return SyntheticPair(reference=ref, measurement=meas, displacement_y=dy, displacement_x=dx, meta=meta)
