@@ -311,21 +311,24 @@ def z_d_sweep(rig: Rig, *, n: int = 200) -> dict[str, np.ndarray]:
 def deflection_from_temperature_difference(dt_k: float, *, medium) -> float:
     """Deflection scale of a region heated by ``dt_k`` whose in-plane size equals its width.
 
-    A heated region at constant pressure (ideal gas) has density deficit
-    drho = rho0 dT / (T0 + dT); across an in-plane length equal to the
-    path length W the deflection is eps = K drho / n0 (W cancels).
+    The heated gas at the ambient pressure has density
+    ``medium.density_from_temperature(T0 + dT)`` (ideal gas, with the
+    medium's compressibility), a deficit drho; across an in-plane length
+    equal to the path length W the deflection is eps = K drho / n0 (W
+    cancels; references.md section 3: d rho/dy = n0 eps / (K W)).
     """
-    drho = medium.ambient_density * dt_k / (medium.temperature_k + dt_k)
+    t0 = medium.temperature_k
+    drho = float(medium.density_from_temperature(t0)) - float(medium.density_from_temperature(t0 + dt_k))
     return medium.gladstone_dale * drho / medium.ambient_index
 
 
 def temperature_difference_from_deflection(eps_rad: float, *, medium) -> float:
-    """Inverse of :func:`deflection_from_temperature_difference` [K]."""
+    """Inverse of :func:`deflection_from_temperature_difference` [K] (inf if beyond the ambient density)."""
     drho = eps_rad * medium.ambient_index / medium.gladstone_dale
-    rho0 = medium.ambient_density
+    rho0 = float(medium.density_from_temperature(medium.temperature_k))
     if drho >= rho0:
         return math.inf
-    return medium.temperature_k * drho / (rho0 - drho)
+    return float(medium.temperature_from_density(rho0 - drho)) - medium.temperature_k
 
 
 def deflection_from_sound_level(spl_db: float, *, medium, frequency_hz: float, path_m: float) -> float:
