@@ -45,10 +45,10 @@ FORMAT_NAME = "bos-toolkit result 1"
 _JSON_LIST_ATTR = "bos_json_attributes"
 _SEP = "."
 
-#: CF standard names (CF standard-name table) filled in automatically for
-#: variables of these names when the caller gives none.  ``air_density`` and
-#: ``air_temperature`` are only correct for air: a caller writing another gas
-#: passes ``standard_name=None`` in the attributes to leave it out.
+#: CF standard names (CF standard-name table) for the quantities that have
+#: one.  The writer does not add them by itself: ``air_density`` and
+#: ``air_temperature`` are only correct for air, so the caller, who knows the
+#: medium, sets ``standard_name`` in the variable's attributes.
 CF_STANDARD_NAMES = {
     "density": "air_density",
     "temperature": "air_temperature",
@@ -138,8 +138,6 @@ def _as_variable(name: str, spec: Any, *, coord: bool) -> Variable:
         value = attrs.get(key)
         if not isinstance(value, str) or not value.strip():
             raise InputError(f"variable {name!r} has no {key!r} attribute (use '1' for dimensionless units)")
-    if name in CF_STANDARD_NAMES and "standard_name" not in attrs:
-        attrs["standard_name"] = CF_STANDARD_NAMES[name]
     attrs = {_check_name(k, f"attribute of {name!r}"): _plain_attr(name, k, v) for k, v in attrs.items() if v is not None}
     if arr.dtype == np.bool_:
         arr = arr.astype(np.uint8)
@@ -264,8 +262,8 @@ def write_result(
         Global attributes; nested dicts are flattened to ``a.b`` names.
 
     Every coordinate and variable needs ``units`` and ``long_name``
-    attributes; ``standard_name`` is filled from :data:`CF_STANDARD_NAMES`
-    when absent (give ``standard_name=None`` to suppress it).
+    attributes; set ``standard_name`` where CF has one (see
+    :data:`CF_STANDARD_NAMES`).  Attributes whose value is None are left out.
 
     Returns
     -------

@@ -19,6 +19,7 @@ import pytest
 
 from bos.errors import DataFileError, InputError
 from bos.store import (
+    CF_STANDARD_NAMES,
     export_csv,
     export_profile_csv,
     file_sha256,
@@ -50,8 +51,10 @@ def _write(path, **over):
         "row_px": {"dims": ("y",), "data": np.arange(9.0) * 16 + 8, "attrs": {"units": "px", "long_name": "row"}},
     }
     variables = {
-        "temperature": (("y", "x"), temp, {"units": "K", "long_name": "gas temperature"}),
-        "density": (("y", "x"), 353.0 / temp, {"units": "kg m-3", "long_name": "gas density"}),
+        "temperature": (("y", "x"), temp, {"units": "K", "long_name": "gas temperature",
+                                           "standard_name": CF_STANDARD_NAMES["temperature"]}),
+        "density": (("y", "x"), 353.0 / temp, {"units": "kg m-3", "long_name": "gas density",
+                                               "standard_name": None}),
         "masked": (("y", "x"), masked, {"units": "1", "long_name": "user mask", "flag_meanings": "measured masked"}),
         "invalid": {"dims": ("y", "x"), "data": invalid, "attrs": {"units": "1", "long_name": "rejected"}},
     }
@@ -83,7 +86,7 @@ def test_xarray_h5netcdf_opens_with_units_coords_flags(tmp_path):
         for name in list(ds.data_vars) + list(ds.coords):
             assert ds[name].attrs["units"] and ds[name].attrs["long_name"], name
         assert ds["temperature"].attrs["standard_name"] == "air_temperature"  # CF standard-name table
-        assert ds["density"].attrs["standard_name"] == "air_density"
+        assert "standard_name" not in ds["density"].attrs  # None -> left out (e.g. a gas other than air)
         np.testing.assert_array_equal(ds["temperature"].values, temp)  # NaN kept in place
         assert ds["masked"].dtype == np.uint8
         np.testing.assert_array_equal(ds["masked"].values, masked.astype(np.uint8))
