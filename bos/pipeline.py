@@ -1,0 +1,719 @@
+"""One experiment end to end: images -> displacement -> deflection -> density -> files.
+
+:func:`run_experiment` is pure apart from reading the two images (and the
+mask): it returns a :class:`RunResult` and writes nothing.
+:func:`save_run` writes the HDF5 result, the figures and a profile CSV, each
+atomically.  The command line (``bos run``, ``bos demo``) is a thin layer
+over these two functions; notebooks can call the stages one by one
+(:func:`load_inputs`, :func:`measure_displacement`, :func:`reconstruct`,
+:func:`summarize`).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import warnings as warnings_module
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from .config import Experiment
+from .errors import ConfigError, DataFileError
+
+#: progress(stage, fraction) with fraction in [0, 1]; called at stage boundaries.
+ProgressFn = Callable[[str, float], None]
+
+STAGES = ("read images", "displacement", "reconstruction")
+
+
+@dataclass
+class Inputs:
+    """The loaded images and mask of one experiment.
+
+    Attributes
+    ----------
+    reference, measurement : ndarray
+        Luminance images (float, same shape).
+    mask : ndarray of bool or None
+        True = no data (user mask), same shape as the images.
+    paths : dict
+        ``{"reference": Path, "measurement": Path, "mask": Path}`` of the files read.
+    sha256 : dict
+        SHA-256 of each file read.
+    warnings : list of str
+        Warnings raised while reading (lossy compression, bit-depth mix ...).
+    info : dict
+        Per-image metadata (bit depth, format, EXIF) for provenance.
+    """
+
+    reference: np.ndarray
+    measurement: np.ndarray
+    mask: np.ndarray | None
+    paths: dict[str, Path]
+    sha256: dict[str, str]
+    warnings: list[str] = field(default_factory=list)
+    info: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class RunResult:
+    """Everything computed for one experiment.
+
+    Attributes
+    ----------
+    displacement : bos.displacement.DisplacementField
+        Apparent background displacement [sensor px] on the vector grid.
+    eps_y, eps_x : ndarray
+        Deflection angle [rad] on the vector grid (NaN at masked/invalid).
+    density : bos.reconstruct.DensityField or None
+        Density, temperature, index and their 1-sigma uncertainties
+        (``None`` when reconstruction is ``"none"``).
+    y_m, x_m : ndarray
+        Object-plane coordinates [m] of the grid rows and columns; y points down.
+    summary : dict
+        Peak |d| [px], valid fraction, median uncertainty, density and
+        temperature range, camera shift, warnings (JSON-ready).
+    warnings : list of str
+        Everything the user should know about this run.
+    attrs : dict
+        Provenance (rig, medium, processing, reconstruction, input hashes,
+        software version, cautions), JSON-ready.
+    inputs : Inputs
+        The images and mask that were processed.
+    """
+
+    displacement: Any
+    eps_y: np.ndarray
+    eps_x: np.ndarray
+    density: Any
+    y_m: np.ndarray
+    x_m: np.ndarray
+    summary: dict[str, Any]
+    warnings: list[str]
+    attrs: dict[str, Any]
+    inputs: Inputs
+
+
+def _tick(progress: ProgressFn | None, stage: str, fraction: float) -> None:
+    if progress is not None:
+        progress(stage, fraction)
+
+
+# ---------------------------------------------------------------------------
+# Stage 1: inputs
+# ---------------------------------------------------------------------------
+
+
+def _image_path(exp: Experiment, key: str) -> Path:
+    path = exp.resolve(getattr(exp.images, key))
+    if path is None:
+        raise ConfigError(f"missing value: images.{key} (give it in the experiment file or with --{key})")
+    return path
+
+
+def load_inputs(exp: Experiment) -> Inputs:
+    """Read the reference and measurement images and the mask of ``exp``.
+
+    Raises
+    ------
+    ConfigError
+        An image path is not given.
+    DataFileError
+        A file is missing, unreadable or corrupt.
+    InputError
+        The pair does not match (size, bit depth) or the mask has the wrong size.
+    """
+    from . import images, store
+
+    ref_path, meas_path = _image_path(exp, "reference"), _image_path(exp, "measurement")
+    frame = exp.images.frame
+    ref_frame = exp.images.reference_frame if exp.images.reference_frame is not None else frame
+    meas_frame = exp.images.measurement_frame if exp.images.measurement_frame is not None else frame
+    with warnings_module.catch_warnings(record=True) as caught:
+        warnings_module.simplefilter("always")
+        ref = images.read_image(ref_path, frame=ref_frame)
+        meas = images.read_image(meas_path, frame=meas_frame)
+        images.check_pair(ref, meas)
+        shape = ref.data.shape
+        paths = {"reference": ref_path, "measurement": meas_path}
+        mask = None
+        if exp.images.mask is not None:
+            paths["mask"] = exp.resolve(exp.images.mask)
+            mask = images.read_mask(paths["mask"], shape=shape)
+        if exp.images.mask_polygons:
+            mask = images.combine_masks(mask, images.polygon_mask(exp.images.mask_polygons, shape=shape))
+    warnings = [" ".join(str(w.message).split()) for w in caught]
+    info = {label: _image_info(img) for label, img in (("reference", ref), ("measurement", meas))}
+    sha = {k: store.file_sha256(p) for k, p in paths.items()}
+    return Inputs(reference=ref.data, measurement=meas.data, mask=mask, paths=paths, sha256=sha,
+                  warnings=_unique(warnings), info=info)
+
+
+def _image_info(img: Any) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key in ("bit_depth", "lossy", "shape", "n_frames", "exif"):
+        value = getattr(img, key, None)
+        if value is not None and value != {}:
+            out[key] = list(value) if isinstance(value, tuple) else value
+    return out
+
+
+def _unique(items: list[str]) -> list[str]:
+    return list(dict.fromkeys(items))
+
+
+# ---------------------------------------------------------------------------
+# Stage 2: displacement
+# ---------------------------------------------------------------------------
+
+
+def window_schedule(window_px: int, final_window_px: int, passes: int) -> tuple[int, ...]:
+    """Window sizes [px] of the correlation passes, large to small.
+
+    ``passes`` sizes spaced geometrically from ``window_px`` down to
+    ``final_window_px`` and rounded to even numbers (64, 16, 3 -> 64, 32, 16).
+    One pass uses the final window only.
+    """
+    if final_window_px > window_px:
+        raise ConfigError(f"processing.final_window_px ({final_window_px}) is larger than "
+                          f"processing.window_px ({window_px})")
+    if passes == 1:
+        return (int(final_window_px),)
+    sizes = np.geomspace(window_px, final_window_px, passes)
+    out = [max(4, 2 * int(round(v / 2))) for v in sizes]
+    out[0], out[-1] = int(window_px), int(final_window_px)
+    return tuple(out)
+
+
+def displacement_options(exp: Experiment) -> dict[str, Any]:
+    """Keyword options passed to :func:`bos.displacement.estimate` for ``exp``
+    (correlation options; other estimators get only the validation settings)."""
+    p = exp.processing
+    if p.method == "correlation":
+        return {
+            "windows": window_schedule(p.window_px, p.final_window_px, p.passes),
+            "overlap": p.overlap,
+            "threshold": p.outlier_threshold,
+            "epsilon": p.outlier_eps_px,
+        }
+    return {}
+
+
+def _region_box(region: Any, shape: tuple[int, int]) -> np.ndarray:
+    """Boolean image of a reference region ('left', 'edges', [r0, r1, c0, c1] ...)."""
+    rows, cols = shape
+    out = np.zeros(shape, dtype=bool)
+    b = max(1, min(shape) // 8)
+    if isinstance(region, str):
+        if region in ("left", "edges"):
+            out[:, :b] = True
+        if region in ("right", "edges"):
+            out[:, cols - b:] = True
+        if region in ("top", "edges"):
+            out[:b, :] = True
+        if region in ("bottom", "edges"):
+            out[rows - b:, :] = True
+        return out
+    r0, r1, c0, c1 = region
+    out[r0:r1, c0:c1] = True
+    return out
+
+
+def camera_motion_region(exp: Experiment, shape: tuple[int, int]):
+    """What to pass as ``camera_motion`` to :func:`bos.displacement.estimate`.
+
+    ``"none"`` -> None; ``"border"`` -> a band around the image edge;
+    ``"mask"`` -> the reconstruction's reference region (where the user says
+    the gas is ambient, hence no flow).
+    """
+    mode = exp.processing.camera_motion
+    if mode == "none":
+        return None
+    if mode == "border":
+        return "border"
+    return _region_box(exp.reconstruction.reference_region, shape)
+
+
+def measure_displacement(inputs: Inputs, exp: Experiment):
+    """Estimate the background displacement field [px] between the two images."""
+    from . import displacement
+
+    return displacement.estimate(inputs.reference, inputs.measurement, method=exp.processing.method,
+                                 mask=inputs.mask,
+                                 camera_motion=camera_motion_region(exp, inputs.reference.shape),
+                                 **displacement_options(exp))
+
+
+# ---------------------------------------------------------------------------
+# Stage 3: deflection and reconstruction
+# ---------------------------------------------------------------------------
+
+
+def grid_coordinates(rows_px: np.ndarray, cols_px: np.ndarray, *, image_shape: tuple[int, int],
+                     object_pixel_m: float) -> tuple[np.ndarray, np.ndarray]:
+    """Object-plane coordinates [m] of vector-grid rows/columns (architecture.md).
+
+    ``y = (row - (N_rows - 1)/2) * object_pixel_m`` (y down), likewise x.
+    """
+    rc = (image_shape[0] - 1) / 2.0
+    cc = (image_shape[1] - 1) / 2.0
+    return ((np.asarray(rows_px, float) - rc) * object_pixel_m,
+            (np.asarray(cols_px, float) - cc) * object_pixel_m)
+
+
+def _axis_position_m(exp: Experiment, disp, image_shape, object_pixel_m: float) -> float | None:
+    axis_px = exp.reconstruction.axis_px
+    if axis_px is None:
+        return None
+    n = image_shape[1] if exp.reconstruction.axis == "vertical" else image_shape[0]
+    return (axis_px - (n - 1) / 2.0) * object_pixel_m
+
+
+def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None, medium=None):
+    """Deflection, coordinates and density/temperature from a displacement field.
+
+    Returns
+    -------
+    (eps_y, eps_x, y_m, x_m, density_field_or_None)
+    """
+    from . import reconstruct as rec
+
+    rig = rig or exp.rig()
+    medium = medium or exp.medium_model()
+    eps_y, eps_x = rec.deflection_from_displacement(disp.dy, disp.dx, rig=rig)
+    y_m, x_m = grid_coordinates(disp.rows, disp.cols, image_shape=image_shape,
+                                object_pixel_m=rig.object_pixel_m)
+    kind = exp.reconstruction.kind
+    if kind == "none":
+        return eps_y, eps_x, y_m, x_m, None
+    sig_y, sig_x = rec.deflection_from_displacement(disp.sigma_dy, disp.sigma_dx, rig=rig)
+    sig_y, sig_x = np.abs(sig_y), np.abs(sig_x)
+    nodata = disp.masked | disp.invalid | ~np.isfinite(eps_y) | ~np.isfinite(eps_x)
+    r = exp.reconstruction
+    if kind == "planar":
+        width = exp.geometry.object_width_m
+        if width is None:
+            raise ConfigError("missing value: geometry.object_width_mm (needed for a planar reconstruction)")
+        dens = rec.planar_density(
+            eps_y, eps_x, y_m=y_m, x_m=x_m, width_m=width, medium=medium, mask=nodata,
+            sigma_eps=(sig_y, sig_x) if r.weighted else None, boundary=r.boundary,
+            reference_region=r.reference_region, solver=r.solver)
+    else:
+        dens = rec.axisymmetric_density(
+            eps_y, eps_x, y_m=y_m, x_m=x_m, medium=medium, mask=nodata,
+            sigma_eps=(sig_y, sig_x), axis=r.axis,
+            axis_m=_axis_position_m(exp, disp, image_shape, rig.object_pixel_m),
+            method=r.abel_method)
+    return eps_y, eps_x, y_m, x_m, dens
+
+
+# ---------------------------------------------------------------------------
+# Summary and provenance
+# ---------------------------------------------------------------------------
+
+
+def _finite_stat(a, fn, default=float("nan")) -> float:
+    if a is None:
+        return default
+    a = np.asarray(a, float)
+    a = a[np.isfinite(a)]
+    return float(fn(a)) if a.size else default
+
+
+def summarize(disp, dens, *, medium, warnings: list[str]) -> dict[str, Any]:
+    """The short numbers a user wants first (JSON-ready)."""
+    mag = np.hypot(disp.dy, disp.dx)
+    sig = np.hypot(disp.sigma_dy, disp.sigma_dx)
+    n = mag.size
+    valid = ~(disp.masked | disp.invalid) & np.isfinite(mag)
+    unmasked = int((~disp.masked).sum())
+    out: dict[str, Any] = {
+        "vectors": int(n),
+        "grid_shape": [int(s) for s in mag.shape],
+        "peak_displacement_px": _finite_stat(mag, np.max),
+        "valid_fraction": float(valid.sum() / unmasked) if unmasked else 0.0,
+        "masked_fraction": float(disp.masked.sum() / n) if n else 0.0,
+        "invalid_fraction": float(disp.invalid.sum() / n) if n else 0.0,
+        "median_uncertainty_px": _finite_stat(np.where(valid, sig, np.nan), np.median),
+        "camera_shift_px": [float(v) for v in (disp.camera_shift if disp.camera_shift is not None else (0.0, 0.0))],
+        "method": disp.method,
+    }
+    if dens is not None:
+        t0 = medium.temperature_k
+        rho0 = medium.ambient_density
+        tmax = _finite_stat(dens.temperature, np.max)
+        tmin = _finite_stat(dens.temperature, np.min)
+        out.update({
+            "ambient_temperature_k": float(t0),
+            "ambient_density_kg_m3": float(rho0),
+            "min_density_kg_m3": _finite_stat(dens.density, np.min),
+            "max_density_kg_m3": _finite_stat(dens.density, np.max),
+            "min_temperature_k": tmin,
+            "max_temperature_k": tmax,
+            "peak_temperature_rise_k": tmax - t0 if math.isfinite(tmax) else float("nan"),
+            "median_temperature_uncertainty_k": _finite_stat(getattr(dens, "sigma_temperature", None), np.median),
+            "median_density_uncertainty_kg_m3": _finite_stat(getattr(dens, "sigma_density", None), np.median),
+        })
+        extra = getattr(dens, "info", None) or {}
+        if "asymmetry" in extra:
+            out["asymmetry"] = extra["asymmetry"]
+    out["warnings"] = list(warnings)
+    return out
+
+
+def jsonable(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [jsonable(v) for v in obj]
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
+def _section_dict(section: Any) -> dict[str, Any]:
+    import dataclasses
+
+    return jsonable(dataclasses.asdict(section))
+
+
+def _rig_dict(rig) -> dict[str, Any]:
+    keys = ("focal_length_m", "pixel_pitch_m", "f_number", "z_a", "z_b", "z_d", "magnification",
+            "image_distance_m", "object_pixel_m", "sensitivity_m_per_rad", "sensitivity_px_per_rad",
+            "wavelength_m")
+    out = {}
+    for k in keys:
+        try:
+            v = getattr(rig, k)
+        except Exception:  # noqa: BLE001 - a derived property may not apply
+            continue
+        if v is not None:
+            out[k] = jsonable(v)
+    return out
+
+
+def _medium_dict(medium) -> dict[str, Any]:
+    import dataclasses
+
+    out = jsonable(dataclasses.asdict(medium))
+    for k in ("gladstone_dale", "ambient_density", "ambient_index", "molar_mass"):
+        try:
+            out[k] = float(getattr(medium, k))
+        except Exception:  # noqa: BLE001
+            pass
+    return out
+
+
+def cautions(exp: Experiment) -> list[str]:
+    """Safety cautions for the experiment's source and illumination (bos.safety)."""
+    from .safety import cautions_for
+
+    gas = list(exp.medium.composition) if exp.medium.composition else exp.medium.gas
+    return [str(c) for c in cautions_for(exp.source.kind, exp.source.illumination,
+                                         frequency_hz=exp.source.frequency_hz, gas=gas)]
+
+
+# ---------------------------------------------------------------------------
+# The whole chain
+# ---------------------------------------------------------------------------
+
+
+def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> RunResult:
+    """Run every stage of one experiment and return the result (writes nothing).
+
+    Parameters
+    ----------
+    exp : Experiment
+        Validated experiment (see :func:`bos.config.load_experiment`).
+    progress : callable, optional
+        ``progress(stage, fraction)``, called as stages start and finish.
+
+    Returns
+    -------
+    RunResult
+
+    Raises
+    ------
+    BOSError subclasses
+        Bad input at any stage (one-line messages).
+    """
+    import bos
+
+    rig = exp.rig()
+    medium = exp.medium_model()
+    _tick(progress, "read images", 0.0)
+    inputs = load_inputs(exp)
+    _tick(progress, "read images", 1.0)
+    _tick(progress, "displacement", 0.0)
+    disp = measure_displacement(inputs, exp)
+    _tick(progress, "displacement", 1.0)
+    _tick(progress, "reconstruction", 0.0)
+    eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
+                                               rig=rig, medium=medium)
+    _tick(progress, "reconstruction", 1.0)
+    warnings = list(inputs.warnings)
+    warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]
+    warnings += [str(w) for w in (getattr(dens, "warnings", None) or [])]
+    warnings = _unique(warnings)
+    summary = summarize(disp, dens, medium=medium, warnings=warnings)
+    attrs = {
+        "software": "bos-toolkit",
+        "software_version": bos.__version__,
+        "experiment_file": str(exp.source_file) if exp.source_file else None,
+        "rig": _rig_dict(rig),
+        "medium": _medium_dict(medium),
+        "camera": _section_dict(exp.camera),
+        "geometry": _section_dict(exp.geometry),
+        "processing": _section_dict(exp.processing),
+        "displacement_params": jsonable(getattr(disp, "params", {}) or {}),
+        "reconstruction": _section_dict(exp.reconstruction),
+        "source": _section_dict(exp.source),
+        "inputs": {k: str(v) for k, v in inputs.paths.items()},
+        "input_sha256": dict(inputs.sha256),
+        "input_info": jsonable(inputs.info),
+        "cautions": cautions(exp),
+        "summary": jsonable(summary),
+    }
+    return RunResult(displacement=disp, eps_y=eps_y, eps_x=eps_x, density=dens, y_m=y_m, x_m=x_m,
+                     summary=summary, warnings=warnings, attrs=attrs, inputs=inputs)
+
+
+# ---------------------------------------------------------------------------
+# Output
+# ---------------------------------------------------------------------------
+
+
+def prepare_output_dir(directory: str | Path) -> Path:
+    """Create the output directory if needed and check it is writable.
+
+    Raises
+    ------
+    DataFileError
+        The directory cannot be created or written.
+    """
+    d = Path(directory)
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise DataFileError(f"cannot create output directory {d}: {exc.strerror or exc}") from None
+    if not d.is_dir():
+        raise DataFileError(f"output path is not a directory: {d}")
+    if not os.access(d, os.W_OK | os.X_OK):
+        raise DataFileError(f"output directory is not writable: {d}")
+    return d
+
+
+def output_paths(exp: Experiment) -> dict[str, Path]:
+    """Where :func:`save_run` writes each file for ``exp`` (relative directories
+    are taken relative to the experiment file, like the image paths)."""
+    d = exp.resolve(exp.output.directory)
+    name = exp.output.name
+    return {
+        "result": d / f"{name}.h5",
+        "profile_csv": d / f"{name}-profile.csv",
+        "fig_displacement": d / f"{name}-displacement.png",
+        "fig_deflection": d / f"{name}-deflection.png",
+        "fig_density": d / f"{name}-density.png",
+        "fig_profile": d / f"{name}-profile.png",
+    }
+
+
+Y_DOWN_NOTE = "object-plane coordinate; y points DOWN (grows with image row), origin at the image centre"
+
+
+def _var(data, units: str, long_name: str, **extra) -> dict[str, Any]:
+    attrs = {"units": units, "long_name": long_name, **extra}
+    return {"dims": ("y", "x"), "data": np.asarray(data), "attrs": attrs}
+
+
+def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, Any], dict[str, Any]]:
+    """Coordinates and data variables of the HDF5 result (name -> dims, data, attrs).
+
+    Every variable carries ``units`` and ``long_name``; CF standard names are
+    used where one exists (air_density, air_temperature for air).
+    """
+    disp = result.displacement
+    coords = {
+        "y": {"dims": ("y",), "data": np.asarray(result.y_m, float),
+              "attrs": {"units": "m", "long_name": "object-plane y (down)", "positive": "down",
+                        "description": Y_DOWN_NOTE}},
+        "x": {"dims": ("x",), "data": np.asarray(result.x_m, float),
+              "attrs": {"units": "m", "long_name": "object-plane x (right)",
+                        "description": "object-plane coordinate; x points right (grows with image column), "
+                                       "origin at the image centre"}},
+        "row_px": {"dims": ("y",), "data": np.asarray(disp.rows, float),
+                   "attrs": {"units": "px", "long_name": "image row of the vector-grid point"}},
+        "col_px": {"dims": ("x",), "data": np.asarray(disp.cols, float),
+                   "attrs": {"units": "px", "long_name": "image column of the vector-grid point"}},
+    }
+    flag = {"flag_values": np.array([0, 1], np.uint8)}
+    v = {
+        "displacement_y": _var(disp.dy, "px", "apparent background displacement, y component (sensor pixels)"),
+        "displacement_x": _var(disp.dx, "px", "apparent background displacement, x component (sensor pixels)"),
+        "displacement_magnitude": _var(np.hypot(disp.dy, disp.dx), "px", "apparent background displacement magnitude"),
+        "displacement_y_uncertainty": _var(disp.sigma_dy, "px", "1-sigma uncertainty of displacement_y"),
+        "displacement_x_uncertainty": _var(disp.sigma_dx, "px", "1-sigma uncertainty of displacement_x"),
+        "deflection_y": _var(result.eps_y, "rad", "light-ray deflection angle, y component (toward higher index)"),
+        "deflection_x": _var(result.eps_x, "rad", "light-ray deflection angle, x component (toward higher index)"),
+        "masked": _var(np.asarray(disp.masked, np.uint8), "1", "user mask: 1 = no data requested here",
+                       flag_meanings="measured masked", **flag),
+        "invalid": _var(np.asarray(disp.invalid, np.uint8), "1", "validation: 1 = vector rejected as outlier",
+                        flag_meanings="valid rejected", **flag),
+    }
+    dens = result.density
+    if dens is not None:
+        is_air = gas == "air"
+        v["refractive_index"] = _var(dens.index, "1", "refractive index")
+        # store fills CF air_density / air_temperature unless standard_name is None
+        v["density"] = _var(dens.density, "kg m-3", "gas density",
+                            standard_name="air_density" if is_air else None)
+        v["temperature"] = _var(dens.temperature, "K", "gas temperature",
+                                standard_name="air_temperature" if is_air else None)
+        for name, attr, units in (("refractive_index", "sigma_index", "1"), ("density", "sigma_density", "kg m-3"),
+                                  ("temperature", "sigma_temperature", "K")):
+            sig = getattr(dens, attr, None)
+            if sig is not None:
+                v[f"{name}_uncertainty"] = _var(sig, units, f"1-sigma uncertainty of {name}")
+    return coords, v
+
+
+def _default_profile(result: RunResult) -> list[list[float]]:
+    """Horizontal line through the middle of the field [m]."""
+    y_mid = float(result.y_m[len(result.y_m) // 2])
+    return [[float(result.x_m[0]), y_mid], [float(result.x_m[-1]), y_mid]]
+
+
+def as_result_data(result: RunResult, *, gas: str = "air"):
+    """The run as an in-memory :class:`bos.store.ResultData` (same content as the file)."""
+    from .store import ResultData, Variable
+
+    coords, variables = result_variables(result, gas=gas)
+    conv = {k: Variable(dims=tuple(v["dims"]), data=v["data"], attrs=dict(v["attrs"])) for k, v in coords.items()}
+    data = {k: Variable(dims=tuple(v["dims"]), data=v["data"], attrs=dict(v["attrs"])) for k, v in variables.items()}
+    return ResultData(coords=conv, variables=data, attrs=dict(result.attrs))
+
+
+PROFILE_FIELDS = ("displacement_magnitude", "deflection_x", "density", "temperature")
+
+
+def sample_profile(data, line_m, *, names: tuple[str, ...] = PROFILE_FIELDS) -> dict[str, tuple[np.ndarray, str]]:
+    """Sample fields of a result along a straight line (bilinear, :func:`bos.store.profile`).
+
+    Parameters
+    ----------
+    data : bos.store.ResultData
+        A result (from :func:`as_result_data` or :func:`bos.store.read_result`).
+    line_m : [[x0, y0], [x1, y1]]
+        End points in object-plane metres (y down).
+    names : tuple of str
+        Fields to sample; their ``*_uncertainty`` companions are added where present.
+
+    Returns
+    -------
+    dict
+        ``name -> (values, units)`` starting with ``s_m``, ``x_m``, ``y_m``; NaN outside the grid.
+    """
+    from . import store
+
+    (x0, y0), (x1, y1) = line_m
+    out: dict[str, tuple[np.ndarray, str]] = {}
+    for name in names:
+        for key in (name, f"{name}_uncertainty"):
+            if key not in data.variables:
+                continue
+            prof = store.profile(data, key, start=(x0, y0), end=(x1, y1))
+            if not out:
+                out = {"s_m": (prof.s_m, "m"), "x_m": (prof.x_m, "m"), "y_m": (prof.y_m, "m")}
+            out[key] = (prof.values, prof.units)
+    return out
+
+
+def write_profile_csv(path: str | Path, samples: dict[str, tuple[np.ndarray, str]]) -> Path:
+    """Write profile samples (from :func:`sample_profile`) as CSV, atomically.
+
+    Header ``name [units]`` per column; NaN written as ``nan``.
+    """
+    from ._io import atomic_path
+
+    header = ",".join(f"{k} [{u}]" for k, (_, u) in samples.items())
+    table = np.column_stack([v for v, _ in samples.values()])
+    with atomic_path(path) as tmp:
+        np.savetxt(tmp, table, delimiter=",", header=header, comments="", fmt="%.9g")
+    return Path(path)
+
+
+def save_run(result: RunResult, exp: Experiment) -> list[Path]:
+    """Write the HDF5 result, the figures and the profile CSV of a run.
+
+    Each file is written atomically (temporary file + rename).  The result
+    file is written first; figures follow (skipped when
+    ``output.figures = false``).
+
+    Returns
+    -------
+    list of Path
+        The written files, result file first.
+
+    Raises
+    ------
+    DataFileError
+        The output directory cannot be created or written.
+    """
+    from . import store
+
+    paths = output_paths(exp)
+    prepare_output_dir(paths["result"].parent)
+    gas = exp.medium.gas if not exp.medium.composition else "mixture"
+    coords, variables = result_variables(result, gas=gas)
+    attrs = dict(result.attrs)
+    attrs["coordinate_note"] = Y_DOWN_NOTE
+    attrs["title"] = f"BOS result {exp.output.name}"
+    attrs["Conventions"] = "CF-1.8"
+    written = [store.write_result(paths["result"], coords=coords, variables=variables, attrs=attrs) or paths["result"]]
+    line = exp.output.profile or _default_profile(result)
+    samples = sample_profile(as_result_data(result, gas=gas), line)
+    written.append(write_profile_csv(paths["profile_csv"], samples))
+    if exp.output.figures:
+        written += _figures(result, paths, line, samples)
+    return [Path(p) for p in written]
+
+
+def _figures(result: RunResult, paths: dict[str, Path], line, samples) -> list[Path]:
+    from . import plots
+    from .plots import Panel
+
+    disp = result.displacement
+    kw = {"x_m": result.x_m, "y_m": result.y_m, "profile_m": line}
+    out = [
+        plots.fields_figure([Panel(disp.dx, "displacement x", "px", "RdBu_r", True),
+                             Panel(disp.dy, "displacement y", "px", "RdBu_r", True),
+                             Panel(np.hypot(disp.dy, disp.dx), "displacement magnitude", "px", "magma")],
+                            path=paths["fig_displacement"], suptitle="apparent background displacement", **kw),
+        plots.fields_figure([Panel(result.eps_x * 1e6, "deflection x", "µrad", "RdBu_r", True),
+                             Panel(result.eps_y * 1e6, "deflection y", "µrad", "RdBu_r", True)],
+                            path=paths["fig_deflection"], suptitle="light-ray deflection", **kw),
+    ]
+    dens = result.density
+    if dens is not None:
+        out.append(plots.fields_figure([Panel(dens.density, "density", "kg/m³", "cividis"),
+                                        Panel(dens.temperature, "temperature", "K", "inferno")],
+                                       path=paths["fig_density"], suptitle="density and temperature", **kw))
+    curves, sigmas = [], []
+    for key, label in (("displacement_magnitude", "|d|"), ("deflection_x", "deflection x"),
+                       ("density", "density"), ("temperature", "temperature")):
+        if key in samples:
+            values, units = samples[key]
+            curves.append((values, label, units))
+            sigmas.append(samples[f"{key}_uncertainty"][0] if f"{key}_uncertainty" in samples else None)
+    out.append(plots.profile_figure(samples["s_m"][0], curves, sigmas=sigmas, path=paths["fig_profile"],
+                                    title="profile along the line shown in the field figures"))
+    return out

@@ -1,0 +1,71 @@
+"""``bos export``: fields or a line profile of a result file as CSV."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from cli._common import emit_json, handle_errors
+
+
+def parse_profile_mm(text: str) -> list[list[float]]:
+    """``"x0,y0,x1,y1"`` in object-plane mm -> [[x0, y0], [x1, y1]] in metres."""
+    from bos.errors import InputError
+
+    try:
+        vals = [float(v) for v in text.replace(";", ",").split(",")]
+    except ValueError:
+        raise InputError(f"--profile must be x0,y0,x1,y1 in mm, got {text!r}") from None
+    if len(vals) != 4:
+        raise InputError(f"--profile must be four numbers x0,y0,x1,y1 in mm, got {len(vals)}")
+    x0, y0, x1, y1 = (v * 1e-3 for v in vals)
+    if (x0, y0) == (x1, y1):
+        raise InputError("--profile start and end points are the same")
+    return [[x0, y0], [x1, y1]]
+
+
+def _names(variables: Optional[list[str]]) -> Optional[list[str]]:
+    if not variables:
+        return None
+    return [n.strip() for item in variables for n in item.split(",") if n.strip()]
+
+
+def register(app: typer.Typer) -> None:
+    @app.command("export")
+    @handle_errors
+    def export(
+        result: Path = typer.Argument(..., help="result file (.h5) written by bos run"),
+        csv: Path = typer.Option(..., "--csv", help="output CSV file"),
+        variables: Optional[list[str]] = typer.Option(
+            None, "--variables", help="variables to export (comma-separated or repeated; default: all fields)"),
+        profile: Optional[str] = typer.Option(
+            None, "--profile", help="export a line profile instead: x0,y0,x1,y1 in object-plane mm (y down)"),
+        as_json: bool = typer.Option(False, "--json", help="print what was written as JSON"),
+    ) -> None:
+        """Write fields (one row per grid point) or a line profile of a result file as CSV."""
+        from bos import store
+        from bos.errors import InputError
+        from bos.pipeline import PROFILE_FIELDS, sample_profile, write_profile_csv
+
+        data = store.read_result(result)
+        names = _names(variables)
+        if names:
+            unknown = [n for n in names if n not in data.variables]
+            if unknown:
+                raise InputError(f"unknown variable(s) {', '.join(unknown)}; have {', '.join(sorted(data.variables))}")
+        if profile is not None:
+            line = parse_profile_mm(profile)
+            samples = sample_profile(data, line, names=tuple(names or PROFILE_FIELDS))
+            if not samples:
+                raise InputError("none of the requested variables is a 2-D field in this result")
+            write_profile_csv(csv, samples)
+            columns = list(samples)
+        else:
+            store.export_csv(csv, data, variables=names)
+            columns = None
+        if as_json:
+            emit_json({"file": str(csv), "kind": "profile" if profile else "fields", "columns": columns})
+        else:
+            typer.echo(f"wrote {csv}")
