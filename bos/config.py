@@ -133,7 +133,8 @@ SCHEMA: dict[str, dict[str, Spec]] = {
         "passes": Spec("int", 3, lo=1, hi=10, help="number of correlation passes"),
         "overlap": Spec("float", 0.5, lo=0.0, hi=0.9, help="window overlap fraction"),
         "camera_motion": Spec("str", "border", choices=("none", "border", "mask"),
-                              help="global camera-motion removal: none, image border band, or outside the flow mask"),
+                              help="global camera-motion removal: none, from a band along the image border, "
+                                   "or 'mask' = from the reconstruction reference region (ambient, no flow)"),
         "outlier_threshold": Spec("float", 2.0, positive=True, help="normalised median test threshold"),
         "outlier_eps_px": Spec("float", 0.1, positive=True, help="normalised median test epsilon [px]"),
     },

@@ -640,11 +640,12 @@ def sample_profile(data, line_m, *, names: tuple[str, ...] = PROFILE_FIELDS) -> 
 def write_profile_csv(path: str | Path, samples: dict[str, tuple[np.ndarray, str]]) -> Path:
     """Write profile samples (from :func:`sample_profile`) as CSV, atomically.
 
-    Header ``name [units]`` per column; NaN written as ``nan``.
+    One header line of column names (units as in the result file: ``s_m``,
+    ``x_m``, ``y_m`` in metres, then the fields); NaN written as ``nan``.
     """
     from ._io import atomic_path
 
-    header = ",".join(f"{k} [{u}]" for k, (_, u) in samples.items())
+    header = ",".join(samples)
     table = np.column_stack([v for v, _ in samples.values()])
     with atomic_path(path) as tmp:
         np.savetxt(tmp, table, delimiter=",", header=header, comments="", fmt="%.9g")

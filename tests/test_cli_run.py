@@ -1,0 +1,231 @@
+"""`bos run`, `bos inspect`, `bos export`, `bos demo` through the command line.
+
+Outside sources of the checks:
+* the synthetic pairs are rendered by the analytic forward model
+  (bos.synthetic: exact erf area integrals of Gaussian dots) through an
+  analytic deflection field: a planar Gaussian refractive-index layer
+  n - n_inf = A exp(-x^2/s^2), uniform across the width W, whose deflection
+  eps_x = (W/n0) dn/dx = -(2 A W x / (n0 s^2)) exp(-x^2/s^2) follows by
+  differentiation (references.md section 3, deflection definition [D]);
+  the true temperature is T = T(n) through Gladstone-Dale and the ideal-gas
+  law (bos.media, itself checked against CoolProp in test_media.py);
+* the result files are opened with xarray + h5netcdf (general-purpose
+  reference readers of netCDF4/HDF5);
+* JSON output is parsed with the standard library, CSV with numpy.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from bos import synthetic
+from bos.media import Medium
+from bos.optics import Rig
+from cli.app import get_app
+
+SHAPE = (256, 320)          # small: the whole file stays inside its time budget
+T0_K = 293.15
+PRESSURE_PA = 101325.0
+WIDTH_M = 0.05              # planar layer depth along the line of sight
+RIG = dict(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=11.0, z_a_m=0.6, z_d_m=0.4)
+LAYER_DT_K = 40.0           # temperature rise at the layer centre
+LAYER_S_PX = 40.0           # 1/e half-width of the index layer, in image pixels
+
+runner = CliRunner()
+
+
+def invoke(*args: str):
+    return runner.invoke(get_app(), [str(a) for a in args])
+
+
+def rig() -> Rig:
+    return Rig(**RIG, sensor_px=SHAPE)
+
+
+def medium() -> Medium:
+    return Medium(gas="air", temperature_k=T0_K, pressure_pa=PRESSURE_PA)
+
+
+def layer_truth(shape=SHAPE):
+    """Index layer, its analytic deflection and true temperature on the pixel grid."""
+    r, med = rig(), medium()
+    p = r.object_pixel_m
+    x = (np.arange(shape[1]) - (shape[1] - 1) / 2) * p
+    s = LAYER_S_PX * p
+    n0 = med.ambient_index
+    # amplitude A < 0 (hot, low index) chosen so that the centre is LAYER_DT_K hotter
+    a = med.index_from_density(med.density_from_temperature(T0_K + LAYER_DT_K)) - n0
+    n = n0 + a * np.exp(-(x / s) ** 2)
+    eps_x = -(2 * a * WIDTH_M * x / (n0 * s ** 2)) * np.exp(-(x / s) ** 2)
+    temperature = med.temperature_from_index(n)
+    dx = -r.sensitivity_px_per_rad * eps_x          # d = -(M Z_D / pitch) eps (architecture.md)
+    d_x = np.broadcast_to(dx, shape).copy()
+    return x, temperature, d_x
+
+
+def write_png16(path: Path, counts: np.ndarray) -> Path:
+    import imageio.v3 as iio
+
+    iio.imwrite(path, np.clip(np.rint(counts), 0, 65535).astype(np.uint16), extension=".png")
+    return path
+
+
+def write_tiff16(path: Path, counts: np.ndarray) -> Path:
+    import tifffile
+
+    tifffile.imwrite(path, np.clip(np.rint(counts), 0, 65535).astype(np.uint16))
+    return path
+
+
+EXPERIMENT = """
+[camera]
+focal_length_mm = 50
+pixel_pitch_um = 5
+f_number = 11
+
+[geometry]
+camera_to_object_m = 0.6
+object_to_background_m = 0.4
+object_width_mm = {width_mm}
+
+[medium]
+gas = "air"
+temperature_k = {t0}
+pressure_pa = {p}
+
+[images]
+reference = "{ref}"
+measurement = "{meas}"
+
+[processing]
+window_px = 48
+final_window_px = 16
+passes = 2
+overlap = 0.5
+camera_motion = "none"
+
+[reconstruction]
+kind = "planar"
+reference_region = "edges"
+
+[output]
+directory = "out"
+name = "layer"
+"""
+
+
+def write_experiment(d: Path, ref: str, meas: str, extra: str = "") -> Path:
+    f = d / "exp.toml"
+    f.write_text(EXPERIMENT.format(width_mm=WIDTH_M * 1e3, t0=T0_K, p=PRESSURE_PA, ref=ref, meas=meas) + extra)
+    return f
+
+
+@pytest.fixture(scope="module")
+def layer_pair():
+    _, _, d_x = layer_truth()
+    pair = synthetic.render_pair(shape=SHAPE, displacement=(np.zeros(SHAPE), d_x), dot_diameter_px=2.8,
+                                 density=0.55, seed=5, bit_depth=16, noise=True)
+    return pair.reference, pair.measurement
+
+
+@pytest.fixture()
+def png_case(tmp_path, layer_pair):
+    ref, meas = layer_pair
+    write_png16(tmp_path / "ref.png", ref)
+    write_png16(tmp_path / "meas.png", meas)
+    return write_experiment(tmp_path, "ref.png", "meas.png")
+
+
+# ----------------------------------------------------------------------------- bad input
+
+
+def _no_result_left(d: Path) -> bool:
+    leftovers = [p for p in d.rglob("*") if p.suffix in (".h5", ".png", ".csv", ".part") and "out" in p.parts]
+    return not leftovers
+
+
+def _assert_clean_failure(res, d: Path, needle: str):
+    assert res.exit_code == 2, (res.exit_code, res.stdout, res.stderr)
+    lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("error:"), res.stderr
+    assert needle.lower() in lines[0].lower(), lines[0]
+    assert "Traceback" not in res.stdout + res.stderr
+    assert _no_result_left(d)
+
+
+def test_missing_image_file(png_case):
+    (png_case.parent / "meas.png").unlink()
+    res = invoke("run", png_case)
+    _assert_clean_failure(res, png_case.parent, "not found")
+
+
+def test_corrupt_image(png_case):
+    (png_case.parent / "meas.png").write_bytes(b"\x89PNG\r\n\x1a\n" + os.urandom(200))
+    res = invoke("run", png_case)
+    _assert_clean_failure(res, png_case.parent, "cannot read")
+
+
+def test_size_mismatch(png_case, layer_pair):
+    write_png16(png_case.parent / "meas.png", layer_pair[1][:200, :300])
+    res = invoke("run", png_case)
+    _assert_clean_failure(res, png_case.parent, "size mismatch")
+
+
+def test_mask_of_wrong_size(png_case):
+    import imageio.v3 as iio
+
+    iio.imwrite(png_case.parent / "mask.png", np.zeros((100, 100), np.uint8))
+    res = invoke("run", png_case, "--mask", png_case.parent / "mask.png")
+    _assert_clean_failure(res, png_case.parent, "mask")
+
+
+def test_toml_syntax_error(png_case):
+    png_case.write_text(png_case.read_text() + "\n[broken\n")
+    res = invoke("run", png_case)
+    _assert_clean_failure(res, png_case.parent, "not valid TOML")
+
+
+def test_unknown_key(png_case):
+    png_case.write_text(png_case.read_text().replace("[processing]", "[processing]\nwindow_size = 32"))
+    res = invoke("run", png_case)
+    _assert_clean_failure(res, png_case.parent, "unknown key in [processing]: window_size")
+
+
+def test_unwritable_output_directory(png_case):
+    blocker = png_case.parent / "blocker"
+    blocker.write_text("a file where a directory should be")
+    res = invoke("run", png_case, "--out", blocker / "sub")
+    _assert_clean_failure(res, png_case.parent, "output directory")
+    assert not (blocker.parent / "sub").exists()
+
+
+@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0, reason="root ignores directory permissions")
+def test_read_only_output_directory(png_case):
+    ro = png_case.parent / "ro"
+    ro.mkdir()
+    ro.chmod(0o555)
+    try:
+        res = invoke("run", png_case, "--out", ro)
+        _assert_clean_failure(res, png_case.parent, "not writable")
+        assert not any(ro.iterdir())
+    finally:
+        ro.chmod(0o755)
+
+
+def test_image_without_texture(png_case):
+    write_png16(png_case.parent / "meas.png", np.full(SHAPE, 30000.0))
+    res = invoke("run", png_case)
+    _assert_clean_failure(res, png_case.parent, "texture")
+
+
+def test_missing_image_key(tmp_path):
+    f = write_experiment(tmp_path, "ref.png", "meas.png")
+    f.write_text(f.read_text().replace('measurement = "meas.png"\n', ""))
+    res = invoke("run", f)
+    _assert_clean_failure(res, tmp_path, "images.measurement")
