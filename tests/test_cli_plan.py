@@ -1,0 +1,183 @@
+"""Tests of the ``bos plan`` command and of bos.safety.
+
+Run through typer's CliRunner on ``cli.app.get_app()``; outside sources are
+named beside each check.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import imageio.v3 as iio
+import pytest
+from typer.testing import CliRunner
+
+from bos import config, safety
+from bos.errors import InputError
+from cli.app import get_app
+
+ROOT = Path(__file__).resolve().parents[1]
+EXAMPLE = ROOT / "datasets" / "plan_example.toml"
+FIRST = ["--focal-length-mm", "50", "--pixel-um", "5", "--camera-to-object-m", "1",
+         "--object-to-background-m", "0.5", "--object-width-mm", "20"]
+
+
+def _run(args):
+    return CliRunner().invoke(get_app(), ["plan", *args])
+
+
+def _json(args):
+    res = _run([*args, "--json"])
+    assert res.exit_code == 0, res.output
+    return json.loads(res.stdout)
+
+
+def test_done_when_json_sensitivity():
+    # issue 2 "Done when" / references.md Table 3.1 row 1 [C]: 17.24 mm/rad on the sensor, 3448 px/rad
+    out = _json(FIRST)
+    assert out["sensitivity_mm_per_rad"] == pytest.approx(17.24, rel=1e-3)
+    assert out["sensitivity_px_per_rad"] == pytest.approx(3448, rel=1e-3)
+    # same row: object-plane blur 2.08 mm (cone), d_i 21.6 px, d_d 2.2 px at N = 8 (the default)
+    assert out["object_blur_geometric_m"] == pytest.approx(2.08e-3, abs=0.005e-3)
+    assert out["geometric_blur_px"] == pytest.approx(21.6, abs=0.05)
+    assert out["diffraction_blur_px"] == pytest.approx(2.2, abs=0.05)
+    assert isinstance(out["warnings"], list) and isinstance(out["cautions"], list)
+    assert out["cautions"][-1] == safety.DEFER
+
+
+def test_table_output_and_example_file():
+    res = _run([str(EXAMPLE)])
+    assert res.exit_code == 0, res.output
+    assert "17.24" in res.stdout and "mm/rad" in res.stdout and "caution:" in res.stdout
+    out = _json([str(EXAMPLE)])
+    # the file's Z_A = 1 m, Z_D = 0.5 m, f = 50 mm, 5 um: Table 3.1 row 1 [C]
+    assert out["sensitivity_mm_per_rad"] == pytest.approx(17.24, rel=1e-3)
+    assert out["field_of_view_m"] == pytest.approx([4000 * 0.09667e-3, 6000 * 0.09667e-3], rel=1e-3)
+
+
+def test_options_override_file():
+    # --object-to-background-m 1 replaces the file's Z_D, Z_A = 1 m kept: Table 3.1 row 3 [C] 25.64 mm/rad
+    out = _json([str(EXAMPLE), "--object-to-background-m", "1.0"])
+    assert out["sensitivity_mm_per_rad"] == pytest.approx(25.64, rel=1e-3)
+    assert out["z_a_m"] == pytest.approx(1.0)
+    # a camera-to-background option drops the file's least specific distance first (Z_D)
+    out = _json([str(EXAMPLE), "--camera-to-background-m", "3.0"])
+    assert out["z_b_m"] == pytest.approx(3.0) and out["z_a_m"] == pytest.approx(1.0)
+    # Table 3.1 row 4 [C] entirely from options on top of the file: f = 100 mm, 2 m + 1 m, N = 11 -> 34.48 mm/rad
+    out = _json([str(EXAMPLE), "--focal-length-mm", "100", "--camera-to-object-m", "2",
+                 "--object-to-background-m", "1", "--f-number", "11"])
+    assert out["sensitivity_mm_per_rad"] == pytest.approx(34.48, rel=1e-3)
+    assert out["geometric_blur_px"] == pytest.approx(31.3, abs=0.05)
+
+
+def test_solve_for_z_d_round_trip():
+    out = _json([*FIRST, "--focal-length-mm", "200", "--target-dt-k", "5", "--solve-for", "z_d"])
+    assert out["design"]["solve_for"] == "z_d"
+    assert out["z_d_m"] == pytest.approx(out["design"]["value"])
+    assert out["z_a_m"] == pytest.approx(1.0)  # Z_A held, the given Z_D was the starting point only
+    assert out["min_temperature_difference_k"] == pytest.approx(5.0, rel=1e-6)
+
+
+def test_chart_written(tmp_path):
+    png = tmp_path / "chart.png"
+    res = _run([*FIRST, "--chart", str(png)])
+    assert res.exit_code == 0, res.output
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    img = iio.imread(png)
+    assert img.ndim == 3 and img.shape[0] > 200 and img.shape[1] > 300
+    assert not [p for p in tmp_path.iterdir() if p.name != "chart.png"]  # no temporary left behind
+    res = _run([*FIRST, "--chart", str(tmp_path / "missing-dir" / "c.png")])
+    assert res.exit_code == 2 and not (tmp_path / "missing-dir").exists()
+
+
+@pytest.mark.parametrize("source,illum,freq,words", [
+    ("ultrasound", "ambient", 40e3, ["Safety Code 24", "110 dB"]),
+    ("plume", "strobe", 10.0, ["WCAG", "3-30 Hz"]),
+    ("spark", "flash", None, ["lethal", "WCAG"]),
+    ("gas-jet", "laser", None, ["IEC 60825-1", "oxygen"]),
+    ("flame", "high-power-led", None, ["IEC 62471", "invisible flame"]),
+])
+def test_cautions_in_output(source, illum, freq, words):
+    # references.md sec. 10 [D]: WCAG 2.3.1, IEC 62471, IEC 60825-1, Safety Code 24 / Howard et al. 2004
+    args = [*FIRST, "--source", source, "--illumination", illum]
+    if freq is not None:
+        args += ["--frequency-hz", str(freq)]
+    text = " ".join(_json(args)["cautions"])
+    for w in words:
+        assert w in text, w
+    assert "local codes" in text
+
+
+def test_safety_module():
+    # the kinds accepted in experiment files all have cautions defined (same names as bos.config)
+    assert set(safety.SOURCE_KINDS) == set(config.SOURCE_KINDS)
+    assert set(safety.ILLUMINATION_KINDS) == set(config.ILLUMINATION_KINDS)
+    assert safety.cautions_for("none", "ambient") == [safety.DEFER]
+    # flammable medium adds the fuel-gas caution even for a benign source
+    assert any("H2 burns" in c for c in safety.cautions_for("plume", "led", gas="h2"))
+    # Howard et al. 2004 consensus limit [D]: 75 dB in the 20 kHz band
+    assert any("75 dB (20 kHz band)" in c for c in safety.cautions_for("ultrasound", "led", frequency_hz=20e3))
+    with pytest.raises(InputError, match="unknown source kind"):
+        safety.cautions_for("volcano", "led")
+    assert set(safety.all_cautions()) >= {"source: spark", "illumination: laser"}
+
+
+BAD = [
+    (["--camera-to-background-m", "1", "--object-to-background-m", "1.5"], "Z_D"),  # Z_D >= Z_B
+    (["--camera-to-object-m", "0"], "camera_to_object_m"),  # zero length
+    (["--object-to-background-m", "-0.5"], "object_to_background_m"),  # negative
+    (["--focal-length-mm", "0"], "focal_length_mm"),
+    (["--f-number", "0.4"], "f_number"),
+    (["--wavelength-nm", "250"], "wavelength_nm"),
+    (["--wavelength-nm", "1800"], "wavelength_nm"),
+    (["--gas", "unobtainium"], "unobtainium"),
+    (["--source", "volcano"], "volcano"),
+    (["--solve-for", "zoom"], "solve_for"),
+    (["--sensor-px", "big"], "ROWSxCOLS"),
+    (["--focal-length-mm", "2000"], "focal length"),  # object inside f
+    (["--target-spl-db", "120", "--solve-for", "z_d"], "frequency"),
+    (["--target-dt-k", "0.1", "--solve-for", "z_d"], "no Z_D"),
+]
+
+
+def _one_line_error(res, word):
+    assert res.exit_code == 2, res.output
+    err = res.stderr.strip()
+    assert len(err.splitlines()) == 1 and err.startswith("error:"), err
+    assert word in err, err
+    assert "Traceback" not in res.output
+
+
+@pytest.mark.parametrize("extra,word", BAD)
+def test_bad_options(extra, word):
+    # issue 2 "Bad input": one-line error naming the problem, exit 2, no traceback
+    args = list(FIRST)
+    if extra[0] in ("--camera-to-background-m",):
+        args = args[:4] + args[8:]  # replace Z_A/Z_D by Z_B/Z_D
+    _one_line_error(_run([*args, *extra]), word)
+
+
+GEOMETRY_OPTS = FIRST[4:]  # Z_A, Z_D, width from options; camera from the file
+
+
+@pytest.mark.parametrize("text,extra,word", [
+    ("[camera\nfocal_length_mm = 50\n", FIRST, "not valid TOML"),
+    ("[camera]\nfocal_length_mm = 50\nzoom = 3\n", FIRST, "zoom"),
+    ("[lens]\nfocal_length_mm = 50\n", FIRST, "lens"),
+    ("[camera]\nfocal_length_mm = 'fifty'\npixel_pitch_um = 5\n", GEOMETRY_OPTS, "focal_length_mm"),
+    ("[camera]\nfocal_length_mm = 50\npixel_pitch_um = 5\n[geometry]\nobject_to_background_m = 2.0\n"
+     "camera_to_background_m = 1.0\nobject_width_mm = 20\n", [], "Z_D"),
+    ("[medium]\ngas = 'unobtainium'\n", FIRST, "unobtainium"),
+])
+def test_bad_files(tmp_path, text, extra, word):
+    # malformed TOML, unknown keys / sections, wrong types, impossible geometry, unknown gas in a file
+    f = tmp_path / "bad.toml"
+    f.write_text(text)
+    _one_line_error(_run([str(f), *extra]), word)
+
+
+def test_missing_file_and_values(tmp_path):
+    _one_line_error(_run([str(tmp_path / "nope.toml")]), "not found")
+    _one_line_error(_run(FIRST[:-2]), "--object-width-mm")
+    _one_line_error(_run(FIRST[2:]), "--focal-length-mm")
