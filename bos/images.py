@@ -512,8 +512,11 @@ def check_pair(ref: ImageData, meas: ImageData) -> None:
         Different bit depths (e.g. 8-bit and 16-bit).  Both are already
         scaled to [0, 1], so the pair is usable, but the coarser file limits
         the precision.
-    LossyInputWarning
-        If either image is lossy-compressed.
+
+    Notes
+    -----
+    Lossy inputs are not warned about again here: :func:`read_image` does
+    that when it reads them (see ``ImageData.lossy``).
     """
     for name, im in (("reference", ref), ("measurement", meas)):
         if np.ndim(im.data) != 2:
@@ -534,9 +537,6 @@ def check_pair(ref: ImageData, meas: ImageData) -> None:
             BitDepthMismatchWarning,
             stacklevel=2,
         )
-    lossy = [im.source[0] for im in (ref, meas) if im.lossy]
-    if lossy:
-        warnings.warn(f"lossy-compressed input used: {', '.join(lossy)}", LossyInputWarning, stacklevel=2)
 
 
 def _check_shape(shape) -> tuple[int, int]:

@@ -180,7 +180,7 @@ def _flatten(attrs: Mapping, prefix: str = "") -> tuple[dict[str, Any], list[str
     json_keys: list[str] = []
     for key, value in attrs.items():
         full = prefix + _check_name(key, "attribute")
-        if isinstance(value, Mapping):
+        if isinstance(value, Mapping) and value:
             sub, sub_json = _flatten(value, full + _SEP)
             flat.update(sub)
             json_keys += sub_json
@@ -197,7 +197,7 @@ def _flatten(attrs: Mapping, prefix: str = "") -> tuple[dict[str, Any], list[str
                 flat[full] = arr
                 continue
         try:
-            flat[full] = json.dumps(value, default=_json_default, allow_nan=True)
+            flat[full] = json.dumps(value, default=_json_default, allow_nan=True, ensure_ascii=False)
         except (TypeError, ValueError) as exc:
             raise InputError(f"attribute {full!r} cannot be stored: {exc}") from None
         json_keys.append(full)

@@ -100,6 +100,9 @@ def test_tiff_multipage_float_and_planar(tmp_path):
     assert im.n_frames == 3 and im.source[1] == 2 and im.bit_depth == 16
     np.testing.assert_array_equal(im.data, stack[2] / 65535.0)
     np.testing.assert_array_equal(read_image(tmp_path / "stack.tif").data, stack[0] / 65535.0)
+    pages = list(iter_frames(tmp_path / "stack.tif"))
+    assert [p.source[1] for p in pages] == [0, 1, 2]
+    np.testing.assert_array_equal(pages[1].data, stack[1] / 65535.0)
 
     f = rng.normal(size=(10, 14)).astype(np.float32)
     tifffile.imwrite(tmp_path / "f.tif", f)

@@ -66,6 +66,7 @@ def _write(path, **over):
         "processing": {"method": "correlation", "passes": [64, 32], "subpixel": True, "options": None},
         "input_sha256": {"reference": "ab" * 32},
         "cautions": ["hot surface", "laser class 2"],
+        "exif": {},
     }
     kw = {"coords": coords, "variables": variables, "attrs": attrs}
     kw.update(over)
@@ -122,6 +123,7 @@ def test_round_trip(tmp_path):
                                      "subpixel": True, "options": None}
     assert r.attrs["cautions"] == ["hot surface", "laser class 2"]
     assert r.attrs["medium"] == {"gas": "air", "pressure_pa": 101325.0}
+    assert r.attrs["exif"] == {}
     # what was read can be written again unchanged
     path2 = write_result(tmp_path / "again.h5", coords=r.coords, variables=r.variables, attrs=r.attrs)
     r2 = read_result(path2)
