@@ -207,3 +207,183 @@ def test_bad_input_raises_input_error(call, match):
     with pytest.raises(InputError, match=match) as info:
         call()
     assert "\n" not in str(info.value)
+
+
+# ---------------------------------------------------------------------------
+# known fields
+# ---------------------------------------------------------------------------
+
+
+def test_gaussian_blob_check_value():
+    # Source: references.md section 3, analytic BOS test object, check value [C]:
+    # A = 1e-5, s = 10 mm, (x, y) = (4, 2) mm -> eps_x = -1.160930e-5 rad.
+    ey, ex = syn.gaussian_blob_deflection(2e-3, 4e-3, amplitude=1e-5, radius_m=10e-3)
+    assert float(ex) == pytest.approx(-1.160930e-5, rel=1e-6)
+    assert float(ey) == pytest.approx(-1.160930e-5 / 2, rel=1e-6)  # y/x = 1/2 by symmetry
+    # Source: scipy.integrate.quad of (1/n0) dn/dx along z (references.md section 3 definition).
+    n0 = 1.000273
+    val, _ = integrate.quad(lambda z: -2 * 4e-3 / 1e-4 * 1e-5 * math.exp(-(16e-6 + 4e-6 + z * z) / 1e-4), -0.1, 0.1, epsabs=1e-16)
+    _, ex0 = syn.gaussian_blob_deflection(2e-3, 4e-3, amplitude=1e-5, radius_m=10e-3, n0=n0)
+    assert float(ex0) == pytest.approx(val / n0, rel=1e-9)
+
+
+def _gauss(r):
+    return np.exp(-(r**2) / 0.09)
+
+
+def _quartic(r):
+    return np.where(r < 1.0, (1 - r**2) ** 2, 0.0)
+
+
+def test_abel_projection_matches_analytic_pairs():
+    # Source: references.md section 5, analytic Abel pairs and F(0) values [C]
+    # (Gaussian treated with a support radius of 3 so truncation is < 1e-15).
+    y = np.linspace(0, 0.95, 40)
+    np.testing.assert_allclose(syn.abel_projection(_gauss, y, radius=3.0), math.sqrt(math.pi) * 0.3 * _gauss(y), atol=1e-12)
+    np.testing.assert_allclose(syn.abel_projection(_quartic, y, radius=1.0), 16 / 15 * (1 - y**2) ** 2.5, atol=1e-12)
+    assert float(syn.abel_projection(lambda r: 1 - r**2, 0.0, radius=1.0)) == pytest.approx(1.333333, abs=1e-6)
+    assert float(syn.abel_projection(_gauss, 0.0, radius=3.0)) == pytest.approx(0.531736, abs=1e-6)
+
+
+def test_abel_projection_matches_pyabel_forward():
+    # Source: PyAbel 0.9.1 forward transforms (references.md section 5 lists their
+    # accuracy on this Gaussian: basex 3.0e-4, hansenlaw 4.8e-3 of the peak).
+    abel = pytest.importorskip("abel")
+    r = np.linspace(0, 1, 201)
+    ours = syn.abel_projection(_gauss, r, radius=3.0)
+    basex = np.asarray(
+        abel.basex.basex_transform(_gauss(r)[None, :], sigma=1.0, reg=0.0, correction=True, basis_dir=None, dr=r[1], verbose=False, direction="forward")
+    ).ravel()
+    hansen = np.asarray(abel.hansenlaw.hansenlaw_transform(_gauss(r)[None, :], dr=r[1], direction="forward")).ravel()
+    inner = r < 0.9
+    assert np.max(np.abs(ours - basex)[inner]) < 4e-4
+    assert np.max(np.abs(ours - hansen)[inner]) < 6e-3
+
+
+def test_axisymmetric_column_matches_abel_pair_derivatives():
+    # Source: references.md section 5: eps = F'(y)/n0 with the analytic pairs
+    # Gaussian: F' = -2 sqrt(pi) y/s exp(-y^2/s^2) (x A);  (1-r^2)^2: F' = -(16/3) y (1-y^2)^{3/2}.
+    # Target accuracy ~1e-6 relative to the peak deflection.
+    a, n0 = 2e-4, 1.00027
+    x = np.linspace(-0.98, 0.98, 99)
+    y = np.zeros_like(x)
+    ey, ex = syn.axisymmetric_column_deflection(y, x, index_profile=lambda r: n0 + a * _gauss(r), radius_m=3.0, n0=n0)
+    exact = a * (-2 * math.sqrt(math.pi) * x / 0.3 * _gauss(x)) / n0
+    assert np.max(np.abs(ex - exact)) < 1e-6 * np.max(np.abs(exact))
+    assert np.all(ey == 0)
+    _, ex_an = syn.gaussian_column_deflection(y, x, amplitude=a, radius_m=0.3, n0=n0)
+    np.testing.assert_allclose(ex_an, exact, rtol=1e-12, atol=0)
+    _, ex = syn.axisymmetric_column_deflection(y, x, index_profile=lambda r: n0 + a * _quartic(r), radius_m=1.0, n0=n0)
+    exact = a * (-16 / 3 * x * (1 - x**2) ** 1.5) / n0
+    assert np.max(np.abs(ex - exact)) < 1e-6 * np.max(np.abs(exact))
+    # sampled profile (cubic spline of 2001 samples)
+    rs = np.linspace(0, 3.0, 2001)
+    _, ex = syn.axisymmetric_column_deflection(y, x, index_profile=(rs, n0 + a * _gauss(rs)), radius_m=3.0, n0=n0)
+    exact = a * (-2 * math.sqrt(math.pi) * x / 0.3 * _gauss(x)) / n0
+    assert np.max(np.abs(ex - exact)) < 1e-5 * np.max(np.abs(exact))
+
+
+def test_column_deflection_matches_pyabel_projection_gradient():
+    # Source: PyAbel basex forward projection, differentiated with numpy.gradient
+    # (2nd order, dr = 0.005): agreement to ~1e-3 of the peak deflection.
+    abel = pytest.importorskip("abel")
+    r = np.linspace(0, 1, 201)
+    proj = np.asarray(
+        abel.basex.basex_transform(_gauss(r)[None, :], sigma=1.0, reg=0.0, correction=True, basis_dir=None, dr=r[1], verbose=False, direction="forward")
+    ).ravel()
+    slope = np.gradient(proj, r[1])
+    _, ex = syn.axisymmetric_column_deflection(np.zeros_like(r), r, index_profile=lambda q: 1 + _gauss(q), radius_m=3.0, n0=1.0)
+    inner = (r > 0.02) & (r < 0.9)
+    assert np.max(np.abs(ex - slope)[inner]) < 2e-3 * np.max(np.abs(ex))
+
+
+def test_cfd_grid_line_of_sight_matches_blob():
+    # Source: references.md section 3 analytic Gaussian blob deflection [C]; the
+    # gridded route (trapezoid in z, 4th-order differences, h = s/16) must agree to 5e-5
+    # (measured 1.9e-5).
+    s, a = 0.01, 1e-5
+    h = s / 16
+    ax = np.arange(-64, 65) * h
+    yy, xx, zz = np.meshgrid(ax, ax, ax, indexing="ij")
+    field = 1.0 + a * np.exp(-(xx**2 + yy**2 + zz**2) / s**2)
+    ey, ex = syn.line_of_sight_deflection(field, spacing_m=(h, h, h), n0=1.0)
+    y2, x2 = np.meshgrid(ax, ax, indexing="ij")
+    ey_a, ex_a = syn.gaussian_blob_deflection(y2, x2, amplitude=a, radius_m=s)
+    peak = np.abs(ex_a).max()
+    assert np.max(np.abs(ex - ex_a)) < 5e-5 * peak
+    assert np.max(np.abs(ey - ey_a)) < 5e-5 * peak
+
+
+def _medium(gas="air"):
+    media = pytest.importorskip("bos.media")
+    return media.Medium(gas=gas, wavelength_m=532e-9, temperature_k=293.15, pressure_pa=101325.0)
+
+
+def test_hot_column_matches_linearised_gas_law():
+    # Source: ideal gas rho ~ 1/T and Gladstone-Dale n - 1 = K rho (references.md section 1):
+    # for a small rise dT, n - n0 ~= -(n0 - 1) dT / T0 * exp(-r^2/s^2), a Gaussian column
+    # (analytic deflection, references.md section 5 pair).  Nonlinearity ~ dT/T0 = 2e-4.
+    # Nitrogen: bos.media treats it as an ideal gas (air uses the CIPM Z(T), whose
+    # T dZ/dT ~ 3e-3 would add a real-gas term to the linearisation).
+    medium = _medium("n2")
+    n0 = medium.ambient_index
+    dt, s = 0.05, 0.02
+    prof = syn.axisymmetric_temperature_column(delta_t_k=dt, radius_m=s, medium=medium)
+    x = np.linspace(-0.05, 0.05, 101)
+    _, ex = syn.axisymmetric_column_deflection(0 * x, x, index_profile=prof, radius_m=6 * s, n0=n0)
+    _, ex_lin = syn.gaussian_column_deflection(0 * x, x, amplitude=-(n0 - 1) * dt / 293.15, radius_m=s, n0=n0)
+    assert np.max(np.abs(ex - ex_lin)) < 5e-4 * np.abs(ex_lin).max()
+    # the same column from a gridded temperature field (uniform along y)
+    h = s / 10
+    ax = np.arange(-60, 61) * h
+    yy, xx, zz = np.meshgrid(np.arange(5) * h, ax, ax, indexing="ij")
+    temp = 293.15 + dt * np.exp(-(xx**2 + zz**2) / s**2)
+    ey_g, ex_g = syn.line_of_sight_deflection(temp, spacing_m=(h, h, h), kind="temperature", medium=medium)
+    _, ex_c = syn.axisymmetric_column_deflection(0 * ax, ax, index_profile=prof, radius_m=6 * s, n0=n0)
+    assert np.max(np.abs(ex_g[2] - ex_c)) < 1e-3 * np.abs(ex_c).max()
+    assert np.max(np.abs(ey_g)) < 1e-9 * np.abs(ex_c).max()
+
+
+def test_planar_layer_against_two_d_relation():
+    # Source: references.md section 3, 2-D object of width W: d(rho)/dy = n0 eps_y / (K W),
+    # i.e. eps_y = (W / n0) dn/dy for n - n0 = A exp(-y^2/s^2) (derivative by hand).
+    y = np.linspace(-0.03, 0.03, 61)
+    ey, ex = syn.planar_layer_deflection(y, 0 * y, amplitude=-1e-6, thickness_m=0.01, width_m=0.2, n0=1.0003)
+    dn_dy = -1e-6 * (-2 * y / 1e-4) * np.exp(-(y**2) / 1e-4)
+    np.testing.assert_allclose(ey, 0.2 / 1.0003 * dn_dy, rtol=1e-12, atol=1e-20)
+    assert np.all(ex == 0)
+
+
+def test_rig_geometry_and_sign_toward_axis():
+    # Source: references.md Table 3.1 [C]: f = 50 mm, Z_A = 1 m, Z_D = 0.5 m, 5 um pixels
+    # -> S = 17.24 mm/rad = 3448 px/rad; design.md: a hot column's displacement points to its axis.
+    optics = pytest.importorskip("bos.optics")
+    rig = optics.Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_a_m=1.0, z_d_m=0.5)
+    dy, dx = syn.displacement_from_deflection(np.array([1e-4]), np.array([-2e-4]), rig=rig)
+    assert float(dy[0]) == pytest.approx(-0.3448, rel=1e-3)
+    assert float(dx[0]) == pytest.approx(+0.6897, rel=1e-3)
+    medium = _medium()
+    prof = syn.axisymmetric_temperature_column(delta_t_k=30.0, radius_m=0.01, medium=medium)
+
+    def hot(y, x):
+        return syn.axisymmetric_column_deflection(y, x, index_profile=prof, radius_m=0.06, n0=medium.ambient_index)
+
+    field = syn.displacement_from_field(hot, rig=rig, shape=(64, 256))
+    rows, cols = np.mgrid[0:64, 0:256].astype(float)
+    _, dx = field(rows, cols)
+    y_m, x_m = syn.pixel_to_object(rows, cols, shape=(64, 256), rig=rig)
+    assert x_m[0, 0] == pytest.approx(-127.5 * rig.object_pixel_m)
+    moving = np.abs(dx) > 1e-3
+    assert moving.sum() > 100
+    assert np.all(np.sign(dx[moving]) == -np.sign(x_m[moving]))  # toward the axis x = 0
+
+
+def test_rendered_motion_direction_with_independent_registration():
+    # Source: skimage.registration.phase_cross_correlation (returns the shift that
+    # registers the moving image onto the reference, i.e. minus the feature motion).
+    registration = pytest.importorskip("skimage.registration")
+    bg = syn.random_dots(shape=(128, 128), seed=8)
+    ref = syn.render(bg, seed=1)
+    meas = syn.render(bg, camera_shift=(0.6, -1.3), seed=2)
+    shift, _, _ = registration.phase_cross_correlation(ref, meas, upsample_factor=50)
+    np.testing.assert_allclose(shift, [-0.6, 1.3], atol=0.05)
