@@ -121,6 +121,11 @@ def test_safety_module():
     with pytest.raises(InputError, match="unknown source kind"):
         safety.cautions_for("volcano", "led")
     assert set(safety.all_cautions()) >= {"source: spark", "illumination: laser"}
+    # docs/safety.md lists every caution text verbatim
+    doc = (ROOT / "docs" / "safety.md").read_text()
+    for texts in safety.all_cautions().values():
+        for t in texts:
+            assert t in doc
 
 
 BAD = [
