@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 from typing import Any, Optional
@@ -116,6 +117,10 @@ def build(experiment_file: Path | None, options: dict[str, Any]):
     if options.get("sensor_px") is not None:
         overrides["camera.sensor_px"] = _parse_sensor(options["sensor_px"])
     exp = load_experiment(experiment_file, overrides=overrides)
+    # a target named on the command line replaces the file's other target
+    for opt, other in (("target_dt_k", "target_spl_db"), ("target_spl_db", "target_dt_k")):
+        if options.get(opt) is not None and options.get(other) is None:
+            exp = dataclasses.replace(exp, plan=dataclasses.replace(exp.plan, **{other: None}))
     cam, geo = exp.camera, exp.geometry
     rig_kw = dict(focal_length_m=cam.focal_length_m, pixel_pitch_m=cam.pixel_pitch_m, f_number=cam.f_number,
                   sensor_px=cam.sensor_px, wavelength_m=cam.wavelength_m,
@@ -198,6 +203,7 @@ def write_chart(path: Path, rig, result) -> None:
 
 def print_table(result, design, cautions: list[str]) -> None:
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     console = Console()
@@ -224,9 +230,9 @@ def print_table(result, design, cautions: list[str]) -> None:
         table.add_row(label, _fmt(d[key], scale, fmt, sep), unit)
     console.print(table)
     for w in result.warnings:
-        console.print(f"[yellow]warning:[/] {w}", highlight=False)
+        console.print(f"[yellow]warning:[/] {escape(w)}", highlight=False)
     for c in cautions:
-        console.print(f"[red]caution:[/] {c}", highlight=False)
+        console.print(f"[red]caution:[/] {escape(c)}", highlight=False)
 
 
 def register(app: typer.Typer) -> None:
@@ -234,30 +240,30 @@ def register(app: typer.Typer) -> None:
     @handle_errors
     def plan_command(
         experiment_file: Optional[Path] = typer.Argument(None, help="experiment TOML file (options override it)"),
-        focal_length_mm: Optional[float] = typer.Option(None, help="lens focal length [mm]"),
-        pixel_um: Optional[float] = typer.Option(None, help="sensor pixel pitch [µm]"),
+        focal_length_mm: Optional[float] = typer.Option(None, help="lens focal length (mm)"),
+        pixel_um: Optional[float] = typer.Option(None, help="sensor pixel pitch (µm)"),
         f_number: Optional[float] = typer.Option(None, help="lens f-number N"),
         sensor_px: Optional[str] = typer.Option(None, help="sensor size ROWSxCOLS in pixels, e.g. 4000x6000"),
-        wavelength_nm: Optional[float] = typer.Option(None, help="effective wavelength of the light [nm]"),
-        camera_to_background_m: Optional[float] = typer.Option(None, help="Z_B: lens to background [m]"),
-        object_to_background_m: Optional[float] = typer.Option(None, help="Z_D: object mid-plane to background [m]"),
-        camera_to_object_m: Optional[float] = typer.Option(None, help="Z_A: lens to object mid-plane [m]"),
-        object_width_mm: Optional[float] = typer.Option(None, help="object width along the line of sight, or diameter [mm]"),
+        wavelength_nm: Optional[float] = typer.Option(None, help="effective wavelength of the light (nm)"),
+        camera_to_background_m: Optional[float] = typer.Option(None, help="Z_B: lens to background (m)"),
+        object_to_background_m: Optional[float] = typer.Option(None, help="Z_D: object mid-plane to background (m)"),
+        camera_to_object_m: Optional[float] = typer.Option(None, help="Z_A: lens to object mid-plane (m)"),
+        object_width_mm: Optional[float] = typer.Option(None, help="object width along the line of sight, or diameter (mm)"),
         gas: Optional[str] = typer.Option(None, help="gas (air, n2, o2, co2, ar, he, h2, h2o, ch4, sf6, c3h8)"),
-        pressure_pa: Optional[float] = typer.Option(None, help="ambient pressure [Pa]"),
-        temperature_c: Optional[float] = typer.Option(None, help="ambient temperature [°C]"),
-        humidity_pct: Optional[float] = typer.Option(None, help="relative humidity of air [%]"),
-        co2_ppm: Optional[float] = typer.Option(None, help="CO2 content of air [ppm]"),
+        pressure_pa: Optional[float] = typer.Option(None, help="ambient pressure (Pa)"),
+        temperature_c: Optional[float] = typer.Option(None, help="ambient temperature (°C)"),
+        humidity_pct: Optional[float] = typer.Option(None, help="relative humidity of air (%)"),
+        co2_ppm: Optional[float] = typer.Option(None, help="CO2 content of air (ppm)"),
         source: Optional[str] = typer.Option(None, help="source kind: plume, hot-air, flame, gas-jet, compressed-gas, spark, ultrasound, shock, other, none"),
         illumination: Optional[str] = typer.Option(None, help="ambient, led, high-power-led, strobe, flash, laser, arc-lamp, screen"),
-        frequency_hz: Optional[float] = typer.Option(None, help="source frequency (sound sources, strobes) [Hz]"),
-        noise_px: Optional[float] = typer.Option(None, help="displacement noise floor [px] (default 0.05)"),
-        window_px: Optional[int] = typer.Option(None, help="final interrogation window [px] (default 32)"),
-        expected_deflection_rad: Optional[float] = typer.Option(None, help="largest expected deflection [rad]"),
-        target_dt_k: Optional[float] = typer.Option(None, help="smallest temperature difference to resolve [K]"),
-        target_spl_db: Optional[float] = typer.Option(None, help="smallest sound level to resolve [dB re 20 µPa]"),
+        frequency_hz: Optional[float] = typer.Option(None, help="source frequency (Hz; sound sources, strobes)"),
+        noise_px: Optional[float] = typer.Option(None, help="displacement noise floor (px, default 0.05)"),
+        window_px: Optional[int] = typer.Option(None, help="final interrogation window (px, default 32)"),
+        expected_deflection_rad: Optional[float] = typer.Option(None, help="largest expected deflection (rad)"),
+        target_dt_k: Optional[float] = typer.Option(None, help="smallest temperature difference to resolve (K)"),
+        target_spl_db: Optional[float] = typer.Option(None, help="smallest sound level to resolve (dB re 20 µPa)"),
         solve_for: Optional[str] = typer.Option(None, help="inverse design: z_d, focal_length or f_number"),
-        max_blur_mm: Optional[float] = typer.Option(None, help="largest acceptable object-plane blur [mm] (inverse design)"),
+        max_blur_mm: Optional[float] = typer.Option(None, help="largest acceptable object-plane blur (mm, inverse design)"),
         json_out: bool = typer.Option(False, "--json", help="print machine-readable JSON"),
         chart: Optional[Path] = typer.Option(None, help="write a PNG of sensitivity and blur against Z_D"),
     ) -> None:

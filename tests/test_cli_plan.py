@@ -79,6 +79,16 @@ def test_solve_for_z_d_round_trip():
     assert out["min_temperature_difference_k"] == pytest.approx(5.0, rel=1e-6)
 
 
+def test_solve_for_f_number_and_focal_length():
+    # the file's target_dt_k = 30 K is replaced by the sound target given as an option
+    out = _json([str(EXAMPLE), "--solve-for", "focal_length", "--target-spl-db", "150", "--frequency-hz", "40000",
+                 "--source", "ultrasound"])
+    assert out["min_spl_db"] == pytest.approx(150.0, abs=1e-6)
+    assert out["focal_length_m"] == pytest.approx(out["design"]["value"])
+    out = _json([str(EXAMPLE), "--solve-for", "f_number", "--max-blur-mm", "1.5"])
+    assert out["object_blur_m"] == pytest.approx(1.5e-3, rel=1e-6) and 8 < out["f_number"] < 16
+
+
 def test_chart_written(tmp_path):
     png = tmp_path / "chart.png"
     res = _run([*FIRST, "--chart", str(png)])
