@@ -36,6 +36,11 @@ def assert_printed(value: float, text: str, rel: float = 0.0) -> None:
     assert abs(value - ref) <= tol, f"{value!r} vs printed {text} (tol {tol:.3g})"
 
 
+COOLPROP_FLUID = {"air": "Air", "n2": "Nitrogen", "o2": "Oxygen", "co2": "CarbonDioxide", "ar": "Argon",
+                  "he": "Helium", "h2": "Hydrogen", "h2o": "Water", "ch4": "Methane",
+                  "sf6": "SulfurHexafluoride", "c3h8": "n-Propane"}
+
+
 def ciddor_ri(lam_m, t_k, p, rh, co2=450.0):
     """ref_index 1.0 Ciddor (NIST toolbox form): nm, degC, Pa, RH in %, ppm."""
     return ref_index.ciddor(lam_m * 1e9, t_k - 273.15, p, rh * 100.0, co2)
@@ -229,11 +234,6 @@ def test_propane_is_flagged_as_estimate():
     assert media.Medium(gas="n2").warnings == ()
 
 
-COOLPROP_FLUID = {"air": "Air", "n2": "Nitrogen", "o2": "Oxygen", "co2": "CarbonDioxide", "ar": "Argon",
-                  "he": "Helium", "h2": "Hydrogen", "h2o": "Water", "ch4": "Methane",
-                  "sf6": "SulfurHexafluoride", "c3h8": "n-Propane"}
-
-
 @pytest.mark.parametrize("gas", sorted(COOLPROP_FLUID))
 def test_molar_mass_and_gamma_against_coolprop(gas):
     fluid = COOLPROP_FLUID[gas]
@@ -301,15 +301,15 @@ def test_helium_air_example():
     # Mole-fraction weighting of the pure gases' n-1 at the same (T, p) is the same number
     # (ideal gases, analytic identity; references.md §1 [C]).
     n_he = media.Medium(gas="he", wavelength_m=632.8e-9).ambient_index - 1
-    n_air = 1 + media.gladstone_dale("air", wavelength_m=632.8e-9) * media.ideal_gas_density(
-        293.15, 101325.0, media.molar_mass("air")) - 1
+    n_air = media.gladstone_dale("air", wavelength_m=632.8e-9) * media.ideal_gas_density(
+        293.15, 101325.0, media.molar_mass("air"))
     assert med.ambient_index - 1 == pytest.approx(0.5 * n_he + 0.5 * n_air, rel=1e-12)
     assert media.mixture_molar_mass({"he": 0.5, "air": 0.5}) == pytest.approx(med.molar_mass, rel=1e-12)
 
 
 def test_mixture_gamma_from_heat_capacities():
-    # Analytic: molar cp of an ideal mixture adds by mole fraction; He/Ar mix stays 5/3, and
-    # 50:50 He/N2 gives cp = 0.5*(5/2 + 3.5/0.4... ) R -> gamma = (cp)/(cp - R).
+    # Analytic (ideal mixture): molar heat capacities add by mole fraction, cp_i = gamma_i R/(gamma_i - 1).
+    # A He/Ar mix stays 5/3; 50:50 He/N2 has cp = 0.5 * 2.5 R + 0.5 * 3.5 R and gamma = cp/(cp - R).
     assert media.mixture_heat_capacity_ratio({"he": 0.3, "ar": 0.7}) == pytest.approx(5 / 3, rel=1e-12)
     cp = 0.5 * 2.5 + 0.5 * 1.4 / 0.4  # in units of R
     assert media.mixture_heat_capacity_ratio({"he": 0.5, "n2": 0.5}) == pytest.approx(cp / (cp - 1), rel=1e-12)
