@@ -387,3 +387,64 @@ def test_rendered_motion_direction_with_independent_registration():
     meas = syn.render(bg, camera_shift=(0.6, -1.3), seed=2)
     shift, _, _ = registration.phase_cross_correlation(ref, meas, upsample_factor=50)
     np.testing.assert_allclose(shift, [-0.6, 1.3], atol=0.05)
+
+
+# ---------------------------------------------------------------------------
+# bos synth command
+# ---------------------------------------------------------------------------
+
+
+def _invoke(args):
+    from typer.testing import CliRunner
+
+    from cli.app import get_app
+
+    return CliRunner().invoke(get_app(), ["synth", *args])
+
+
+def test_cli_synth_writes_pair_and_truth(tmp_path):
+    # Source: design.md sign physics (hot column -> displacement toward the axis) and the
+    # sign link d = -S eps of docs/architecture.md; images read back with imageio / tifffile.
+    import json
+
+    import imageio.v3 as iio
+
+    res = _invoke(["--field", "hot-column", "--rows", "48", "--cols", "96", "--out", str(tmp_path), "--json", "--delta-t-k", "60"])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.stdout)
+    assert summary["shape"] == [48, 96] and len(summary["files"]) == 3
+    ref = iio.imread(tmp_path / "synthetic_reference.png")
+    assert ref.dtype == np.uint16 and ref.shape == (48, 96) and 0 < ref.max() <= 4095
+    with np.load(tmp_path / "synthetic_truth.npz") as t:
+        dx, ex, x_m, s = t["displacement_x_px"], t["deflection_x_rad"], t["x_m"], float(t["sensitivity_px_per_rad"])
+    np.testing.assert_allclose(dx, -s * ex, rtol=1e-12, atol=1e-15)
+    moving = np.abs(dx) > 1e-4
+    assert np.all(np.sign(dx[moving]) == -np.sign(np.broadcast_to(x_m[None, :], dx.shape)[moving]))
+    assert summary["max_displacement_px"] == pytest.approx(np.abs(dx).max())
+
+    res = _invoke(["--field", "uniform", "--dx-px", "1", "--rows", "32", "--cols", "40", "--out", str(tmp_path),
+                   "--format", "tiff", "--no-noise", "--name", "u"])
+    assert res.exit_code == 0, res.output
+    import tifffile
+
+    a, b = tifffile.imread(tmp_path / "u_reference.tif"), tifffile.imread(tmp_path / "u_measurement.tif")
+    np.testing.assert_array_equal(b[:, 1:], a[:, :-1])  # features moved by +1 px in x
+
+
+@pytest.mark.parametrize(
+    "args, word",
+    [
+        (["--field", "vortex"], "field"),
+        (["--dot-px", "-2"], "dot_diameter_px"),
+        (["--format", "bmp"], "format"),
+        (["--rows", "0"], "shape"),
+        (["--radius-mm", "0"], "radius"),
+        (["--bit-depth", "20"], "bit_depth"),
+    ],
+)
+def test_cli_synth_bad_options_exit_2(tmp_path, args, word):
+    # Source: project CLI rule (docs/architecture.md): bad input -> one line on stderr, exit 2.
+    res = _invoke(["--out", str(tmp_path), "--rows", "16", "--cols", "16", *args])
+    assert res.exit_code == 2
+    err = res.stderr.strip()
+    assert err.startswith("error:") and "\n" not in err and word in err
