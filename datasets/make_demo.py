@@ -46,7 +46,7 @@ from bos.media import Medium
 from bos.optics import Rig
 
 HERE = Path(__file__).resolve().parent
-DEFAULT_SHAPE = (768, 1024)
+DEFAULT_SHAPE = (600, 800)
 TRUTH_STRIDE = 4
 
 # Rig shared by both scenes except the distances (SI).
@@ -168,19 +168,24 @@ def plate_deflection(x_m, y_m, med: Medium):
 # ----------------------------------------------------------------------------- writing
 
 
-def _write_png16(path: Path, counts: np.ndarray) -> None:
+def _publish(path: Path) -> None:
+    path.chmod(0o644)  # atomic_path's temporary files are private (0600)
+
+
+def _write_png(path: Path, img: np.ndarray) -> None:
     import imageio.v3 as iio
 
-    img = np.clip(np.rint(counts), 0, 65535).astype(np.uint16)
     with atomic_path(path) as tmp:
         iio.imwrite(tmp, img, extension=".png")
+    _publish(path)
+
+
+def _write_png16(path: Path, counts: np.ndarray) -> None:
+    _write_png(path, np.clip(np.rint(counts), 0, 65535).astype(np.uint16))
 
 
 def _write_png8(path: Path, mask: np.ndarray) -> None:
-    import imageio.v3 as iio
-
-    with atomic_path(path) as tmp:
-        iio.imwrite(tmp, (mask.astype(np.uint8) * 255), extension=".png")
+    _write_png(path, mask.astype(np.uint8) * 255)
 
 
 TOML_HEAD = """# {title}
@@ -302,9 +307,11 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
                                 displacement_y=d_y[::k, ::k].astype(np.float32),
                                 displacement_x=d_x[::k, ::k].astype(np.float32),
                                 ambient_temperature_k=T_AMBIENT_K, stride_px=k)
+    _publish(d / "truth.npz")
     toml_path = d / "experiment.toml"
     with atomic_path(toml_path) as tmp:
         tmp.write_text(_toml(scene, shape, r, extra=extra), encoding="utf-8")
+    _publish(toml_path)
     peak = float(np.hypot(d_y, d_x).max())
     print(f"{scene}: {shape[0]}x{shape[1]} px, object pixel {r.object_pixel_m * 1e6:.1f} um, "
           f"peak |d| {peak:.2f} px, peak dT {truth_t.max() - T_AMBIENT_K:.1f} K -> {d}")
