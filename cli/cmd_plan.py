@@ -183,18 +183,18 @@ def write_chart(path: Path, rig, result) -> None:
     ax.plot(sw["z_d_m"], sw["sensitivity_m_per_rad"] * 1e3, color="tab:blue", label="sensitivity M·Z_D")
     ax.set_xlabel("object to background distance Z_D [m]")
     ax.set_ylabel("sensitivity [mm/rad on the sensor]", color="tab:blue")
-    ax.plot([rig.z_d], [result.sensitivity_mm_per_rad], "o", color="tab:blue")
+    ax.plot([rig.z_d], [result.sensitivity_mm_per_rad], "o", color="tab:blue", label="chosen design")
     ax2 = ax.twinx()
     ax2.plot(sw["z_d_m"], sw["object_blur_m"] * 1e3, color="tab:red", label="object-plane blur (total)")
     if result.object_width_m < 2.0 * sw["object_blur_m"].max():
         ax2.axhline(result.object_width_m * 1e3, color="tab:red", ls=":", lw=1, label="object width")
     ax2.plot([rig.z_d], [result.object_blur_m * 1e3], "s", color="tab:red")
     ax2.set_ylabel("object-plane blur [mm]", color="tab:red")
-    ax.axvline(rig.z_d, color="0.4", ls="--", lw=1)
+    ax.axvline(rig.z_d, color="0.4", ls="--", lw=1, label="_chosen")
     fixed = f"Z_A = {rig.z_a:.3g} m fixed" if rig.z_a_m is not None else f"Z_B = {rig.z_b:.3g} m fixed"
     ax.set_title(f"f = {rig.focal_length_m * 1e3:.4g} mm, N = {rig.f_number:.3g}, {fixed}; "
                  f"chosen Z_D = {rig.z_d:.3g} m", fontsize=9)
-    lines = ax.get_lines()[:1] + ax2.get_lines()[:2]
+    lines = [ln for ln in ax.get_lines() + ax2.get_lines() if not ln.get_label().startswith("_")]
     ax.legend(lines, [ln.get_label() for ln in lines], loc="upper left", fontsize=8)
     fig.tight_layout()
     with atomic_path(path) as tmp:
