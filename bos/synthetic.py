@@ -344,7 +344,7 @@ def _splat(
     pixel it lands on; every pixel of the disc uses its *own* displacement,
     so the result equals a per-pixel evaluation.  The disc radius covers all
     pixels whose sample point lies within the dot reach, given the landing
-    error and the gradient bound G: |p - p*| <= reach / (1 - G).
+    error and the gradient bound G: |p - p*| <= reach / (1 - sqrt(2) G).
     """
     rows, cols = image.shape
     sy, sx = shift
@@ -370,8 +370,15 @@ def _splat(
             flat = np.clip(np.rint(py), 0, rows - 1).astype(np.intp) * cols + np.clip(np.rint(px), 0, cols - 1).astype(np.intp)
             py = cy_all + sy + dyf[flat]
             px = cx_all + sx + dxf[flat]
-        # landing error <= 0.5 (rounding) + 0.5 (fixed-point residual, generous)
-        radius = reach / (1.0 - gradient_bound) + 1.0
+        # Bounds (max-norm Lipschitz constant G of d, per pixel step):
+        # fixed-point residual e_k <= G (e_{k-1} + 0.5), e_0 <= max|d|; pixels
+        # with |q(p) - c| < reach satisfy |p - p*| <= reach / (1 - sqrt(2) G);
+        # the disc is centred on round(p_3), within sqrt(2) e_3 + sqrt(0.5) of p*.
+        g = gradient_bound
+        resid = float(max(np.abs(dyf).max(), np.abs(dxf).max()))
+        for _ in range(3):
+            resid = g * (resid + 0.5)
+        radius = reach / (1.0 - math.sqrt(2.0) * g) + math.sqrt(2.0) * resid + math.sqrt(0.5)
         half = int(math.ceil(radius))
         oy, ox = np.mgrid[-half : half + 1, -half : half + 1]
         inside = oy**2 + ox**2 <= radius**2

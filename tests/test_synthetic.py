@@ -77,13 +77,19 @@ def test_pixel_value_matches_numerical_area_integral():
         assert img[r, c] == pytest.approx(bg.base + val, abs=2e-6)
 
 
-def test_varying_field_equals_per_pixel_sum_over_all_dots():
+FIELDS = {
+    "smooth": lambda r, c: (1.7 * np.exp(-((r - 20) ** 2 + (c - 24) ** 2) / 150.0), 0.05 * (c - 24) + 0.3),
+    # gradient bound ~0.45 px/px, close to the 0.5 fold limit: stresses the splat-disc bound
+    "steep": lambda r, c: (0.3 * np.cos(r / 4.0), 2.0 * np.sin(c / 5.0) + 0.5 * np.sin(r / 7.0)),
+}
+
+
+@pytest.mark.parametrize("name", sorted(FIELDS))
+def test_varying_field_equals_per_pixel_sum_over_all_dots(name):
     # Source: direct evaluation of the erf-form area integral (scipy.special.erf)
     # summed over every dot for every pixel - no splatting, no table, no truncation.
     bg = syn.random_dots(shape=(40, 48), dot_diameter_px=2.7, seed=5, margin_px=12)
-
-    def field(r, c):
-        return 1.7 * np.exp(-((r - 20) ** 2 + (c - 24) ** 2) / 150.0), 0.05 * (c - 24) + 0.3
+    field = FIELDS[name]
 
     img = _exact(dict(background=bg, displacement=field)) / FULL12
     rr, cc = np.mgrid[0:40, 0:48].astype(float)
