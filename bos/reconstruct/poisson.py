@@ -1,0 +1,549 @@
+"""Least-squares integration of a measured gradient field (Poisson problem).
+
+Given a gradient field ``(gy, gx)`` sampled on a regular grid of cell centres,
+find the scalar field ``phi`` whose discrete gradient best matches it:
+
+    minimise  sum_faces  w_f * ((phi_b - phi_a) / h - g_f)**2
+
+where a face joins two neighbouring valid cells a, b, ``h`` is the grid step
+along the face normal and ``g_f`` the mean of the two measured gradient
+components across the face.  The normal equations are the 5-point Poisson
+equation  -lap(phi) = -div(g)  with natural (Neumann, ``dphi/dnu = g.nu``)
+conditions on every domain edge; Dirichlet values may be imposed on the edges
+of the rectangle (they live on the cell edge, half a step outside the
+outermost vectors).
+
+Solvers (registry :data:`SOLVERS`, all solve the same discrete problem):
+
+``"dct"``
+    fast transform solver for full rectangles without weights: the Kronecker
+    sum of 1-D operators is diagonalised by DCT-II (Neumann/Neumann), DST-II
+    (Dirichlet/Dirichlet), DST-IV / DCT-IV (mixed) along each axis.
+``"pcg"``
+    matrix-free conjugate gradients on masked domains, preconditioned by the
+    rectangle DCT solver (fast when the mask is a modest part of the frame).
+``"multigrid"``
+    sparse normal equations on masked, irregular domains with weights,
+    solved by pyamg algebraic multigrid (Ruge-Stuben) as a CG
+    preconditioner; robust for any mask and strongly varying weights.
+``"sparse"``
+    the same sparse system solved directly by scipy's sparse LU
+    (reference / fallback for small grids).
+
+References
+----------
+Simchony, Chellappa & Shao (1990), IEEE TPAMI 12:435 (DCT Poisson solver) [M].
+Strang (1999), SIAM Rev. 41:135 (the discrete cosine transform) [M].
+Southwell (1980), JOSA 70:998 (zonal least squares from slopes) [M].
+Harker & O'Leary (2008, 2015) (global least-squares integration) [M].
+references.md section 6.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+import scipy.fft as sfft
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from scipy import ndimage
+
+from ..errors import InputError
+
+EDGES = ("top", "bottom", "left", "right")
+"""Edge names: ``top`` = row 0, ``bottom`` = last row, ``left`` = column 0,
+``right`` = last column (y points down)."""
+
+SOLVERS: dict[str, Callable] = {}
+
+
+def _register(name):
+    def deco(fn):
+        SOLVERS[name] = fn
+        return fn
+
+    return deco
+
+
+# ---------------------------------------------------------------- problem set-up
+
+
+class _Problem:
+    """Validated inputs shared by all solvers."""
+
+    def __init__(self, gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet):
+        gy = np.asarray(gy, dtype=float)
+        gx = np.asarray(gx, dtype=float)
+        if gy.ndim != 2 or gy.shape != gx.shape:
+            raise InputError(f"gy and gx must be 2-D arrays of one shape, got {gy.shape} and {gx.shape}")
+        if min(gy.shape) < 2:
+            raise InputError(f"gradient field must be at least 2 x 2, got {gy.shape}")
+        self.shape = gy.shape
+        self.hy, self.hx = _spacing(spacing_m)
+        excluded = np.zeros(self.shape, bool)
+        for name, flag in (("mask", mask), ("invalid", invalid)):
+            if flag is not None:
+                flag = np.asarray(flag, dtype=bool)
+                if flag.shape != self.shape:
+                    raise InputError(f"{name} shape {flag.shape} does not match the field {self.shape}")
+                excluded |= flag
+        bad = ~excluded & ~(np.isfinite(gy) & np.isfinite(gx))
+        if bad.any():
+            raise InputError(f"gradient field has {int(bad.sum())} NaN/inf vectors not flagged masked or invalid")
+        self.wy, self.wx = _weights(weights, self.shape)
+        excluded |= (self.wy <= 0) & (self.wx <= 0)
+        self.valid = ~excluded
+        if not self.valid.any():
+            raise InputError("no valid vectors: the whole domain is masked or invalid")
+        self.gy = np.where(self.valid, gy, 0.0)
+        self.gx = np.where(self.valid, gx, 0.0)
+        self.dirichlet = _dirichlet(boundary, dirichlet, self.shape)
+        self.rectangle = bool(self.valid.all())
+        self.weighted = weights is not None
+
+
+def _spacing(spacing_m):
+    s = np.atleast_1d(np.asarray(spacing_m, dtype=float))
+    if s.size == 1:
+        s = np.repeat(s, 2)
+    if s.size != 2 or not np.all(np.isfinite(s)) or np.any(s <= 0):
+        raise InputError(f"spacing_m must be a positive number or (dy, dx) pair, got {spacing_m!r}")
+    return float(s[0]), float(s[1])
+
+
+def _weights(weights, shape):
+    if weights is None:
+        return np.ones(shape), np.ones(shape)
+    if isinstance(weights, (tuple, list)):
+        if len(weights) != 2:
+            raise InputError("weights must be one array or a (weight_y, weight_x) pair")
+        wy, wx = (np.asarray(w, dtype=float) for w in weights)
+    else:
+        wy = wx = np.asarray(weights, dtype=float)
+    for w in (wy, wx):
+        if w.shape != shape:
+            raise InputError(f"weights shape {w.shape} does not match the field {shape}")
+    wy = np.where(np.isfinite(wy), wy, 0.0)
+    wx = np.where(np.isfinite(wx), wx, 0.0)
+    if np.any(wy < 0) or np.any(wx < 0):
+        raise InputError("weights must be >= 0 (use 1/sigma**2)")
+    return wy, wx
+
+
+def _dirichlet(boundary, dirichlet, shape):
+    if boundary not in ("neumann", "dirichlet", "mixed"):
+        raise InputError(f"boundary must be 'neumann', 'dirichlet' or 'mixed', got {boundary!r}")
+    values = {}
+    for edge, v in (dirichlet or {}).items():
+        if edge not in EDGES:
+            raise InputError(f"unknown edge {edge!r}; use one of {', '.join(EDGES)}")
+        n = shape[1] if edge in ("top", "bottom") else shape[0]
+        arr = np.broadcast_to(np.asarray(v, dtype=float), (n,)).copy() if np.ndim(v) <= 1 else None
+        if arr is None or arr.shape != (n,) or not np.all(np.isfinite(arr)):
+            raise InputError(f"Dirichlet values for edge {edge!r} must be a finite scalar or {n} values")
+        values[edge] = arr
+    if boundary == "dirichlet" and set(values) != set(EDGES):
+        raise InputError("boundary='dirichlet' needs values for all four edges in dirichlet={...}")
+    if boundary == "neumann" and values:
+        boundary = "mixed"
+    return values
+
+
+# ---------------------------------------------------------------- DCT solver
+
+
+def _dct_axis(kind_start, kind_end, m):
+    """Transform type and eigenvalues of the 1-D operator (step 1) on m cells.
+
+    The 1-D normal-equation operator is tridiagonal [-1, 2, -1] with the first
+    (last) diagonal entry 1 at a Neumann end and 3 at a Dirichlet end (edge
+    value half a cell outside).  Its eigenvectors are the DCT-II (N/N),
+    DST-II (D/D), DST-IV (D/N) and DCT-IV (N/D) bases.
+    """
+    k = np.arange(m)
+    if kind_start == "n" and kind_end == "n":
+        return sfft.dct, sfft.idct, 2, 2 - 2 * np.cos(np.pi * k / m)
+    if kind_start == "d" and kind_end == "d":
+        return sfft.dst, sfft.idst, 2, 2 - 2 * np.cos(np.pi * (k + 1) / m)
+    lam = 2 - 2 * np.cos(np.pi * (k + 0.5) / m)
+    if kind_start == "d":
+        return sfft.dst, sfft.idst, 4, lam
+    return sfft.dct, sfft.idct, 4, lam
+
+
+@_register("dct")
+def solve_dct(pb: _Problem) -> np.ndarray:
+    """DCT/DST solver on a full rectangle without weights."""
+    if not pb.rectangle or pb.weighted:
+        raise InputError("the 'dct' solver needs a full rectangle without weights; use method='multigrid'")
+    return _dct_solve(pb, _grid_system(pb)[3])
+
+
+def _dct_solve(pb: _Problem, rhs):
+    """Apply the inverse of the unweighted rectangle operator (pseudo-inverse if all Neumann)."""
+    ny, nx = pb.shape
+    d = pb.dirichlet
+    ty = _dct_axis("d" if "top" in d else "n", "d" if "bottom" in d else "n", ny)
+    tx = _dct_axis("d" if "left" in d else "n", "d" if "right" in d else "n", nx)
+    c = ty[0](rhs, type=ty[2], norm="ortho", axis=0, workers=-1)
+    c = tx[0](c, type=tx[2], norm="ortho", axis=1, workers=-1, overwrite_x=True)
+    lam = ty[3][:, None] / pb.hy**2 + tx[3][None, :] / pb.hx**2
+    singular = lam[0, 0] == 0
+    if singular:
+        lam[0, 0] = 1.0
+    c /= lam
+    if singular:
+        c[0, 0] = 0.0
+    c = ty[1](c, type=ty[2], norm="ortho", axis=0, workers=-1, overwrite_x=True)
+    return tx[1](c, type=tx[2], norm="ortho", axis=1, workers=-1, overwrite_x=True)
+
+
+def _edge_terms(pb: _Problem, edge):
+    """Slice of the edge cells, the gradient extrapolated to h/4 outside them, step, sign."""
+    if edge in ("top", "bottom"):
+        g, h = pb.gy, pb.hy
+        first, second, sign = (g[0], g[1], 1) if edge == "top" else (g[-1], g[-2], -1)
+        sl = (0, slice(None)) if edge == "top" else (-1, slice(None))
+    else:
+        g, h = pb.gx, pb.hx
+        first, second, sign = (g[:, 0], g[:, 1], 1) if edge == "left" else (g[:, -1], g[:, -2], -1)
+        sl = (slice(None), 0) if edge == "left" else (slice(None), -1)
+    return sl, (5 * first - second) / 4, h, sign
+
+
+# ---------------------------------------------------------------- sparse solvers
+
+
+def _faces(pb: _Problem):
+    """Face weights and mean gradients on the grid (zero weight where a cell is invalid).
+
+    Returns ``[(wf_y, gf_y), (wf_x, gf_x)]`` with shapes (ny-1, nx) and (ny, nx-1).
+    """
+    out = []
+    for axis, g, w in ((0, pb.gy, pb.wy), (1, pb.gx, pb.wx)):
+        a = [slice(None)] * 2
+        b = [slice(None)] * 2
+        a[axis], b[axis] = slice(None, -1), slice(1, None)
+        a, b = tuple(a), tuple(b)
+        wa, wb = np.where(pb.valid[a], w[a], 0.0), np.where(pb.valid[b], w[b], 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            wf = np.where((wa > 0) & (wb > 0), 2.0 * wa * wb / (wa + wb), 0.0)
+        out.append((wf, 0.5 * (g[a] + g[b])))
+    return out
+
+
+def _grid_system(pb: _Problem):
+    """Diagonal, face couplings and right-hand side of the normal equations on the full grid."""
+    (wfy, gfy), (wfx, gfx) = _faces(pb)
+    cy, cx = wfy / pb.hy**2, wfx / pb.hx**2
+    diag = np.zeros(pb.shape)
+    rhs = np.zeros(pb.shape)
+    for c, q, axis, h in ((cy, wfy * gfy / pb.hy, 0, pb.hy), (cx, wfx * gfx / pb.hx, 1, pb.hx)):
+        lo = (slice(None, -1), slice(None)) if axis == 0 else (slice(None), slice(None, -1))
+        hi = (slice(1, None), slice(None)) if axis == 0 else (slice(None), slice(1, None))
+        diag[lo] += c
+        diag[hi] += c
+        rhs[lo] -= q
+        rhs[hi] += q
+    for edge, bvals in pb.dirichlet.items():
+        sl, g_edge, h, sign = _edge_terms(pb, edge)
+        w = np.where(pb.valid[sl], (pb.wy if edge in ("top", "bottom") else pb.wx)[sl], 0.0)
+        # half-cell face equation (phi_0 - b)/(h/2) = g_edge with weight w/2
+        diag[sl] += 2 * w / h**2
+        rhs[sl] += w * (sign * g_edge / h + 2 * bvals / h**2)
+    return diag, cy, cx, rhs
+
+
+def _sparse_system(pb: _Problem):
+    """Normal equations A phi = b on the valid cells (compressed numbering)."""
+    diag, cy, cx, rhs = _grid_system(pb)
+    n = int(pb.valid.sum())
+    index = np.full(pb.shape, -1, dtype=np.int64)
+    index[pb.valid] = np.arange(n)
+    rows, cols, vals = [index[pb.valid]], [index[pb.valid]], [diag[pb.valid]]
+    for c, lo, hi in ((cy, index[:-1], index[1:]), (cx, index[:, :-1], index[:, 1:])):
+        on = c > 0
+        ia, ib, v = lo[on], hi[on], -c[on]
+        rows += [ia, ib]
+        cols += [ib, ia]
+        vals += [v, v]
+    A = sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n))
+    return A, rhs[pb.valid], index
+
+
+def _anchor(pb: _Problem, A, b, index):
+    """Pin one cell of every connected component without a Dirichlet edge.
+
+    Pinning adds the equation phi_a = 0 to a system whose other equations do
+    not see a constant shift, so the least-squares solution is unchanged up
+    to that component's constant.  Returns the component labels (on the grid).
+    """
+    labels, count = ndimage.label(pb.valid)
+    anchored = np.zeros(count + 1, bool)
+    for edge in pb.dirichlet:
+        sl = {"top": (0, slice(None)), "bottom": (-1, slice(None)),
+              "left": (slice(None), 0), "right": (slice(None), -1)}[edge]
+        anchored[labels[sl]] = True
+    anchored[0] = True
+    free = np.flatnonzero(~anchored)
+    if free.size:
+        first = ndimage.minimum_position(np.arange(labels.size).reshape(pb.shape), labels, free)
+        idx = np.array([index[p] for p in first])
+        scale = A.diagonal()[idx]
+        scale[scale == 0] = 1.0
+        A = A + sp.csr_matrix((scale, (idx, idx)), shape=A.shape)
+    return A, labels, free
+
+
+def _scatter(pb: _Problem, x, index):
+    out = np.full(pb.shape, np.nan)
+    out[pb.valid] = x[index[pb.valid]]
+    return out
+
+
+@_register("sparse")
+def solve_sparse(pb: _Problem) -> np.ndarray:
+    """Direct sparse LU solve of the normal equations (reference solver)."""
+    A, b, index = _sparse_system(pb)
+    A, _, _ = _anchor(pb, A, b, index)
+    return _scatter(pb, spla.spsolve(A.tocsc(), b), index)
+
+
+@_register("multigrid")
+def solve_multigrid(pb: _Problem, *, rtol: float = 1e-9) -> np.ndarray:
+    """Algebraic multigrid (pyamg, classical Ruge-Stuben) as a CG preconditioner.
+
+    Robust for strongly varying weights and any mask.  Ruge-Stuben with
+    symmetric Gauss-Seidel smoothing set up and solved about 2x faster than
+    smoothed aggregation on a masked 1024^2 Poisson problem here (measured,
+    benchmarks/bench_poisson.py).
+    """
+    A, b, index = _sparse_system(pb)
+    A, _, _ = _anchor(pb, A, b, index)
+    try:
+        import pyamg
+    except ImportError:  # pragma: no cover - pyamg is a declared dependency
+        x, _ = spla.cg(A, b, rtol=rtol, maxiter=20 * A.shape[0])
+        return _scatter(pb, x, index)
+    sgs = ("gauss_seidel", {"sweep": "symmetric"})
+    ml = pyamg.ruge_stuben_solver(A.tocsr(), max_coarse=500, presmoother=sgs, postsmoother=sgs)
+    x = ml.solve(b, tol=rtol, accel="cg", maxiter=300)
+    return _scatter(pb, x, index)
+
+
+@_register("pcg")
+def solve_pcg(pb: _Problem, *, rtol: float = 1e-9, maxiter: int = 300) -> np.ndarray:
+    """Matrix-free conjugate gradients preconditioned by the rectangle DCT solver.
+
+    The operator is applied on the full grid from the face weights (masked
+    cells have no faces); the preconditioner is the exact inverse of the
+    unweighted operator on the enclosing rectangle, restricted to the valid
+    cells.  For masks of moderate extent and weights of moderate spread this
+    converges in ~10-20 iterations independent of the grid size (measured:
+    12 iterations for a disc-shaped hole on 1024^2 and 2048^2), with no
+    matrix assembly.  Falls back to :func:`solve_multigrid` if it does not
+    converge.
+    """
+    diag, cy, cx, rhs = _grid_system(pb)
+    valid = pb.valid
+    shape = pb.shape
+
+    def matvec(v):
+        u = np.zeros(shape)
+        u[valid] = v
+        out = diag * u
+        out[:-1] -= cy * u[1:]
+        out[1:] -= cy * u[:-1]
+        out[:, :-1] -= cx * u[:, 1:]
+        out[:, 1:] -= cx * u[:, :-1]
+        return out[valid]
+
+    def precond(r):
+        u = np.zeros(shape)
+        u[valid] = r
+        return _dct_solve(pb, u)[valid]
+
+    n = int(valid.sum())
+    A = spla.LinearOperator((n, n), matvec=matvec, dtype=float)
+    M = spla.LinearOperator((n, n), matvec=precond, dtype=float)
+    x, info = spla.cg(A, rhs[valid], M=M, rtol=rtol, maxiter=maxiter)
+    if info != 0:
+        return solve_multigrid(pb, rtol=rtol)
+    out = np.full(shape, np.nan)
+    out[valid] = x
+    return out
+
+
+# ---------------------------------------------------------------- public API
+
+
+def integrate_gradient(
+    gy,
+    gx,
+    *,
+    spacing_m,
+    mask=None,
+    invalid=None,
+    weights=None,
+    boundary: str = "neumann",
+    dirichlet: dict | None = None,
+    reference_region=None,
+    reference_value: float = 0.0,
+    method: str = "auto",
+) -> np.ndarray:
+    """Integrate a gradient field to a scalar field by least squares.
+
+    Parameters
+    ----------
+    gy, gx : (ny, nx) ndarray
+        Gradient components d(phi)/dy and d(phi)/dx [unit of phi per metre],
+        sampled at cell centres; y grows with the row index.
+    spacing_m : float or (float, float)
+        Grid step [m], one value or ``(dy, dx)``.
+    mask, invalid : (ny, nx) bool ndarray, optional
+        True where there is no data (user mask) or the vector was rejected.
+        Those cells are left out and come back as NaN.  NaN in ``gy``/``gx``
+        anywhere else raises :class:`~bos.errors.InputError`.
+    weights : ndarray or (ndarray, ndarray), optional
+        Per-vector weights, typically ``1/sigma**2`` (one array for both
+        components or a ``(w_y, w_x)`` pair).  A face between two cells gets
+        the harmonic mean ``2/(1/w_a + 1/w_b)`` of the two weights (the
+        inverse variance of the mean of their gradients, up to a factor 2).
+    boundary : {"neumann", "dirichlet", "mixed"}
+        ``"neumann"``: natural condition dphi/dnu = g.nu on every edge that
+        has no Dirichlet value.  ``"dirichlet"``: all four edges need values.
+    dirichlet : dict, optional
+        Known values on rectangle edges, ``{"top"|"bottom"|"left"|"right":
+        scalar or 1-D array}``; imposed on the cell edge half a step outside
+        the outermost vectors.  Edges not listed stay Neumann.
+    reference_region : bool ndarray or edge name, optional
+        Where ``phi`` is known to equal ``reference_value``; the free
+        constant is set so the mean over the valid cells of the region is
+        ``reference_value``.  Connected parts of the domain that neither touch
+        the region nor a Dirichlet edge come back as NaN (their level is
+        unknown).  Without a region or Dirichlet values each connected part
+        has zero mean.
+    reference_value : float
+        Value of ``phi`` in the reference region.
+    method : {"auto", "dct", "pcg", "multigrid", "sparse"}
+        Solver from :data:`SOLVERS`; ``"auto"`` uses ``"dct"`` on full
+        unweighted rectangles, ``"pcg"`` on unweighted masked domains and
+        ``"multigrid"`` with weights.
+
+    Returns
+    -------
+    phi : (ny, nx) ndarray
+        Integrated field (NaN outside the solved domain).
+
+    References
+    ----------
+    Simchony, Chellappa & Shao (1990), IEEE TPAMI 12:435; Southwell (1980),
+    JOSA 70:998; references.md section 6.
+    """
+    pb = _Problem(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet)
+    if method == "auto":
+        method = "dct" if pb.rectangle and not pb.weighted else "multigrid" if pb.weighted else "pcg"
+    if method not in SOLVERS:
+        raise InputError(f"unknown integration method {method!r}; choose from {', '.join(SOLVERS)}")
+    phi = SOLVERS[method](pb)
+    return _set_level(pb, phi, reference_region, reference_value)
+
+
+def _set_level(pb: _Problem, phi, reference_region, reference_value):
+    phi = np.where(pb.valid, phi, np.nan)
+    labels, count = ndimage.label(pb.valid)
+    region = _region(reference_region, pb.shape)
+    anchored = np.zeros(count + 1, bool)
+    for edge in pb.dirichlet:
+        anchored[np.unique(labels[_edge_slice(edge)])] = True
+    anchored[0] = False
+    if region is None:
+        for lab in range(1, count + 1):
+            if not anchored[lab]:
+                part = labels == lab
+                phi[part] -= phi[part].mean()
+        return phi
+    ref = region & pb.valid
+    if not ref.any():
+        raise InputError("reference region contains no valid vectors")
+    if pb.dirichlet:
+        # level already fixed by the edge values; the region is not used
+        keep = anchored[labels]
+    else:
+        # the whole domain shares one constant only if connected: shift each part touching the region
+        keep = np.zeros(pb.shape, bool)
+        for lab in np.unique(labels[ref]):
+            part = labels == lab
+            phi[part] += reference_value - phi[part & ref].mean()
+            keep |= part
+    phi[~keep] = np.nan
+    return phi
+
+
+def _edge_slice(edge):
+    return {"top": (0, slice(None)), "bottom": (-1, slice(None)),
+            "left": (slice(None), 0), "right": (slice(None), -1)}[edge]
+
+
+def _region(reference_region, shape):
+    if reference_region is None:
+        return None
+    if isinstance(reference_region, str):
+        if reference_region not in EDGES:
+            raise InputError(f"unknown reference edge {reference_region!r}; use one of {', '.join(EDGES)}")
+        region = np.zeros(shape, bool)
+        region[_edge_slice(reference_region)] = True
+        return region
+    region = np.asarray(reference_region, dtype=bool)
+    if region.shape != shape:
+        raise InputError(f"reference region shape {region.shape} does not match the field {shape}")
+    if not region.any():
+        raise InputError("reference region is empty")
+    return region
+
+
+def integrate_gradient_uncertainty(
+    gy, gx, *, sigma_y, sigma_x, n_samples: int = 32, seed: int = 0, **options
+) -> np.ndarray:
+    """1-sigma uncertainty of :func:`integrate_gradient` by Monte Carlo.
+
+    The gradient is perturbed with independent Gaussian noise of standard
+    deviations ``sigma_y``, ``sigma_x`` (same unit as the gradient) and
+    integrated ``n_samples`` times with the same options (boundary,
+    reference region...); the sample standard deviation is returned.  The
+    integration is linear, so this estimates the exact linear propagation;
+    its relative precision is about ``1/sqrt(2 n_samples)`` (12 % at 32).
+
+    Parameters
+    ----------
+    gy, gx : ndarray
+        Measured gradient (only its NaN pattern and shape matter).
+    sigma_y, sigma_x : ndarray or float
+        1-sigma uncertainty of each gradient component.
+    n_samples : int
+        Number of Monte Carlo realisations (>= 2).
+    seed : int
+        Seed of the random generator (results are reproducible).
+    **options
+        Passed to :func:`integrate_gradient`.
+    """
+    if n_samples < 2:
+        raise InputError(f"n_samples must be >= 2, got {n_samples}")
+    rng = np.random.default_rng(seed)
+    gy = np.asarray(gy, dtype=float)
+    shape = gy.shape
+    sy = np.broadcast_to(np.nan_to_num(np.asarray(sigma_y, dtype=float)), shape)
+    sx = np.broadcast_to(np.nan_to_num(np.asarray(sigma_x, dtype=float)), shape)
+    nan_y = np.where(np.isfinite(gy), 0.0, np.nan)
+    nan_x = np.where(np.isfinite(np.asarray(gx, dtype=float)), 0.0, np.nan)
+    options = dict(options, reference_value=0.0)
+    acc = np.zeros(shape)
+    acc2 = np.zeros(shape)
+    for _ in range(n_samples):
+        phi = integrate_gradient(nan_y + sy * rng.standard_normal(shape),
+                                 nan_x + sx * rng.standard_normal(shape), **options)
+        acc += phi
+        acc2 += phi * phi
+    mean = acc / n_samples
+    return np.sqrt(np.maximum(acc2 / n_samples - mean**2, 0.0) * n_samples / (n_samples - 1))
