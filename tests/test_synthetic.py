@@ -84,24 +84,27 @@ FIELDS = {
 }
 
 
-@pytest.mark.parametrize("name", sorted(FIELDS))
-def test_varying_field_equals_per_pixel_sum_over_all_dots(name):
+@pytest.mark.parametrize("name, blur", [("smooth", 0.0), ("steep", 0.0), ("smooth", 2.0)])
+def test_varying_field_equals_per_pixel_sum_over_all_dots(name, blur):
     # Source: direct evaluation of the erf-form area integral (scipy.special.erf)
     # summed over every dot for every pixel - no splatting, no table, no truncation.
+    # With blur: Gaussian convolved with a Gaussian is a Gaussian, variances add and
+    # the integral is kept (standard result), so amplitude scales by sigma_0^2 / sigma^2.
     bg = syn.random_dots(shape=(40, 48), dot_diameter_px=2.7, seed=5, margin_px=12)
     field = FIELDS[name]
 
-    img = _exact(dict(background=bg, displacement=field)) / FULL12
+    img = _exact(dict(background=bg, displacement=field, blur_px=blur)) / FULL12
     rr, cc = np.mgrid[0:40, 0:48].astype(float)
     dy, dx = field(rr, cc)
     qy, qx = (rr - dy)[..., None], (cc - dx)[..., None]
-    s = bg.sigma_px
+    s = math.hypot(bg.sigma_px, blur / 4)
+    amp = bg.amplitude * (bg.sigma_px / s) ** 2
     k = 1 / (s * math.sqrt(2))
 
     def pint(u):
         return s * math.sqrt(math.pi / 2) * (special.erf((u + 0.5) * k) - special.erf((u - 0.5) * k))
 
-    ref = bg.base + np.sum(bg.amplitude * pint(qy - bg.centres_y) * pint(qx - bg.centres_x), axis=-1)
+    ref = bg.base + np.sum(amp * pint(qy - bg.centres_y) * pint(qx - bg.centres_x), axis=-1)
     assert np.max(np.abs(img - ref)) < 2e-6
 
 
