@@ -67,6 +67,8 @@ __all__ = [
 # Relative truncation of the Gaussian dot: contributions below
 # exp(-TRUNC_SIGMAS**2 / 2) ~ 8e-7 of the dot amplitude are dropped.
 TRUNC_SIGMAS = 5.3
+# Largest dot list random_dots will make (~1.2 GB of float64 dot arrays).
+MAX_DOTS = 30_000_000
 # Dots processed per vectorised chunk (bounds the temporary memory:
 # chunk * patch_area * ~6 float64 arrays).
 _CHUNK_ELEMENTS = 4_000_000
@@ -208,6 +210,8 @@ def random_dots(
     x0, x1 = -0.5 - margin, cols - 0.5 + margin
     area = (y1 - y0) * (x1 - x0)
     per_px2 = dens / (math.pi * diameter**2 / 4.0)
+    if per_px2 * area > MAX_DOTS:
+        raise InputError(f"background would hold {per_px2 * area:.3g} dots (limit {MAX_DOTS:.0e}); lower the density or enlarge the dots")
     n = int(rng.poisson(per_px2 * area))
     cy = rng.uniform(y0, y1, n)
     cx = rng.uniform(x0, x1, n)

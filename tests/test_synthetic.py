@@ -203,6 +203,7 @@ def test_render_pair_truth_and_meta():
         (lambda: syn.random_dots(shape=(10, 10), dot_diameter_px=-1), "dot_diameter_px"),
         (lambda: syn.random_dots(shape=(10, 0)), "shape"),
         (lambda: syn.random_dots(shape=(10, 10), density=float("nan")), "density"),
+        (lambda: syn.random_dots(shape=(8000, 8000), dot_diameter_px=0.5, density=2), "dots"),
         (lambda: syn.render(syn.random_dots(shape=(10, 10)), displacement=(np.zeros((10, 9)), np.zeros((10, 9)))), "shape"),
         (lambda: syn.render(syn.random_dots(shape=(10, 10)), displacement=(np.full((10, 10), np.nan), np.zeros((10, 10)))), "NaN"),
         (lambda: syn.render(syn.random_dots(shape=(10, 10)), bit_depth=7), "bit_depth"),
