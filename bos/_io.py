@@ -37,6 +37,10 @@ def atomic_path(path: str | os.PathLike, *, suffix: str | None = None) -> Iterat
     fd, tmp = tempfile.mkstemp(prefix=f".{final.stem}.", suffix=f"{sfx}.part{sfx}" if sfx else ".part", dir=parent)
     os.close(fd)
     tmp_path = Path(tmp)
+    # mkstemp creates 0600 files; give results the usual permissions (0666 & ~umask).
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp_path, 0o666 & ~umask)
     try:
         yield tmp_path
         os.replace(tmp_path, final)
