@@ -1,0 +1,74 @@
+"""Displacement estimation: apparent background motion between two images.
+
+One entry point, :func:`estimate`, selects an estimator from :data:`METHODS`
+by name.  A feature at pixel ``p`` in the reference appears at ``p + d`` in
+the measurement (docs/architecture.md); ``d = (dy, dx)`` in sensor pixels,
+y down.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import InputError
+from .correlation import correlate
+from .field import DisplacementField
+from .motion import camera_region, fit_camera_motion, remove_camera_motion
+from .validation import normalized_median_test, replace_invalid
+
+METHODS = {
+    "correlation": correlate,
+}
+
+__all__ = [
+    "METHODS",
+    "DisplacementField",
+    "estimate",
+    "correlate",
+    "normalized_median_test",
+    "replace_invalid",
+    "camera_region",
+    "fit_camera_motion",
+    "remove_camera_motion",
+]
+
+
+def estimate(reference, measurement, *, method: str = "correlation", mask=None, camera_motion=None,
+             camera_model: str = "shift", border_px: int | None = None, **options) -> DisplacementField:
+    """Measure the apparent background displacement between two images.
+
+    Parameters
+    ----------
+    reference, measurement : ndarray, 2-D
+        Grey images of equal shape (reference: undisturbed background).
+    method : str
+        Name of an estimator in :data:`METHODS` (``"correlation"``: multi-pass
+        window deformation; ``"flow"``: dense optical flow, one vector per
+        pixel).
+    mask : ndarray of bool, optional
+        True where there is no data ("masked" in the result).
+    camera_motion : None, "border" or ndarray of bool
+        Remove a global camera motion estimated outside the flow: ``"border"``
+        uses a band of ``border_px`` around the image edge, an array marks the
+        flow-free region (True = no flow there).  None: no removal.
+    camera_model : {"shift", "affine"}
+        Model of the camera motion fitted in that region.
+    border_px : int, optional
+        Width of the border band [px] (default: 1/8 of the smaller side).
+    **options
+        Passed to the estimator (see :func:`correlate`, :func:`optical_flow`).
+
+    Returns
+    -------
+    DisplacementField
+        With ``camera_shift`` = the removed global shift (dy, dx) [px] and,
+        for the affine model, ``params["camera_affine"]``.
+    """
+    if method not in METHODS:
+        raise InputError(f"unknown displacement method {method!r}; choose one of {', '.join(sorted(METHODS))}")
+    result = METHODS[method](reference, measurement, mask=mask, **options)
+    if camera_motion is None:
+        return result
+    region = camera_region(np.shape(reference), region=camera_motion, border_px=border_px)
+    motion = fit_camera_motion(result, region, model=camera_model)
+    return remove_camera_motion(result, motion)

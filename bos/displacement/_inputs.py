@@ -1,0 +1,104 @@
+"""Checks of the image pair and the mask, including the texture test."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import InputError, NoTextureError
+
+# Lag-one neighbour correlation below which an image is treated as pixel noise
+# only.  Independent pixel noise gives 0 +- 1/sqrt(N); a background of dots of
+# >= 1 px imaged through a lens gives > 0.3 (common practice: dots of 2-3 px,
+# references.md section 3 [M]).
+NOISE_CORRELATION = 0.15
+# Fraction of pixels sitting at the clip level above which an image counts as
+# saturated (or black) rather than textured.
+SATURATED_FRACTION = 0.95
+
+
+def as_image(image, name: str) -> np.ndarray:
+    """Return ``image`` as a finite 2-D float32 array or raise InputError."""
+    arr = np.asarray(image)
+    if arr.ndim != 2:
+        raise InputError(f"{name} must be a 2-D grey image, got an array of shape {arr.shape}")
+    if not (np.issubdtype(arr.dtype, np.number) or arr.dtype == bool) or np.iscomplexobj(arr):
+        raise InputError(f"{name} must hold real numbers, got dtype {arr.dtype}")
+    out = arr.astype(np.float32, copy=False)
+    bad = arr.size - int(np.count_nonzero(np.isfinite(out)))
+    if bad:
+        raise InputError(f"{name} has {bad} non-finite pixels (NaN or inf)")
+    return out
+
+
+def check_pair(reference, measurement, mask=None):
+    """Validate an image pair and mask; return float32 images and a bool mask.
+
+    Raises
+    ------
+    InputError
+        Shape mismatch, non-2-D or non-finite input, bad or all-covering mask.
+    NoTextureError
+        An image is uniform, saturated or pixel noise only.
+    """
+    ref = as_image(reference, "reference")
+    meas = as_image(measurement, "measurement")
+    if ref.shape != meas.shape:
+        raise InputError(f"reference and measurement differ in shape: {ref.shape} vs {meas.shape}")
+    if min(ref.shape) < 8:
+        raise InputError(f"images of shape {ref.shape} are too small (need at least 8 x 8 px)")
+    if mask is None:
+        m = np.zeros(ref.shape, dtype=bool)
+    else:
+        m = np.asarray(mask)
+        if m.shape != ref.shape:
+            raise InputError(f"mask shape {m.shape} does not match the image shape {ref.shape}")
+        m = m.astype(bool, copy=False)
+        if m.all():
+            raise InputError("mask covers the whole image: nothing to measure")
+    check_texture(ref, "reference", m)
+    check_texture(meas, "measurement", m)
+    return ref, meas, m
+
+
+def check_texture(image: np.ndarray, name: str, mask: np.ndarray | None = None) -> None:
+    """Raise NoTextureError when ``image`` has no usable background texture.
+
+    Three cases are told apart: uniform (no variation), saturated (almost
+    every pixel at the clip level) and pixel noise only (no correlation
+    between neighbouring pixels, so nothing a correlation could follow).
+    """
+    step = max(1, int(np.sqrt(image.size / 0.5e6)))  # subsample big images (rows)
+    img = image[::step] if step > 1 else image
+    keep = None if mask is None or not mask.any() else ~(mask[::step] if step > 1 else mask)
+    vals = img[keep] if keep is not None else img.ravel()
+    lo, hi = float(vals.min()), float(vals.max())
+    if hi - lo <= 1e-6 * max(abs(hi), abs(lo), 1e-30):
+        raise NoTextureError(f"no texture in the {name} image: it is uniform (all pixels = {hi:g})")
+    for level, word in ((hi, "saturated"), (lo, "black")):
+        frac = float(np.count_nonzero(vals == level)) / vals.size
+        if frac >= SATURATED_FRACTION:
+            raise NoTextureError(f"no texture in the {name} image: {100 * frac:.0f} % of its pixels are {word}")
+    rho = _neighbour_correlation(img, keep)
+    if rho < NOISE_CORRELATION:
+        raise NoTextureError(
+            f"no texture in the {name} image: it looks like pixel noise only "
+            f"(neighbour correlation {rho:.2f} < {NOISE_CORRELATION})"
+        )
+
+
+def _neighbour_correlation(img: np.ndarray, keep: np.ndarray | None) -> float:
+    """Mean lag-one correlation coefficient along rows and columns."""
+    out = []
+    for a, b, k in (
+        (img[:, :-1], img[:, 1:], None if keep is None else keep[:, :-1] & keep[:, 1:]),
+        (img[:-1], img[1:], None if keep is None else keep[:-1] & keep[1:]),
+    ):
+        if k is not None:
+            a, b = a[k], b[k]
+        a = a.astype(np.float64).ravel()
+        b = b.astype(np.float64).ravel()
+        a -= a.mean()
+        b -= b.mean()
+        den = np.sqrt(np.dot(a, a) * np.dot(b, b))
+        out.append(np.dot(a, b) / den if den > 0 else 0.0)
+    return float(np.mean(out))

@@ -1,0 +1,420 @@
+"""Multi-pass window-deformation cross-correlation."""
+
+from __future__ import annotations
+
+from functools import partial
+
+import numpy as np
+import scipy.fft as sfft
+from numpy.lib.stride_tricks import sliding_window_view
+from scipy import ndimage as ndi
+from scipy.interpolate import RectBivariateSpline
+
+from ..errors import InputError
+from . import _deform
+from ._inputs import check_pair
+from ._peak import gauss3
+from .field import DisplacementField
+from .uncertainty import correlation_statistics
+from .validation import normalized_median_test, replace_invalid
+
+
+def window_starts(n: int, window: int, step: int) -> np.ndarray:
+    """First pixel of every window along an axis of ``n`` px (grid centred)."""
+    count = (n - window) // step + 1
+    first = (n - ((count - 1) * step + window)) // 2
+    return first + step * np.arange(count)
+
+
+def _correlate_stack(a, b, *, workers):
+    """Normalised circular cross-correlation of window stacks (n, W, W).
+
+    ``c[k, t] = sum_x a_k(x) b_k(x + t) / sqrt(sum a_k^2 sum b_k^2)`` for
+    zero-mean windows; returns the integer peak lag, the sub-pixel peak
+    position (ty, tx) and the peak height.
+    """
+    n, wy, wx = a.shape
+    fa = sfft.rfft2(a, workers=workers)
+    fb = sfft.rfft2(b, workers=workers)
+    fb *= fa.conj()
+    del fa
+    c = sfft.irfft2(fb, s=(wy, wx), workers=workers)
+    del fb
+    energy = np.sqrt(np.einsum("kij,kij->k", a, a) * np.einsum("kij,kij->k", b, b))
+    flat = c.reshape(n, -1)
+    idx = np.argmax(flat, axis=1)
+    iy, ix = np.divmod(idx, wx)
+    k = np.arange(n)
+    c0 = flat[k, idx]
+    cym = c[k, (iy - 1) % wy, ix]
+    cyp = c[k, (iy + 1) % wy, ix]
+    cxm = c[k, iy, (ix - 1) % wx]
+    cxp = c[k, iy, (ix + 1) % wx]
+    ly = np.where(iy > wy // 2, iy - wy, iy)
+    lx = np.where(ix > wx // 2, ix - wx, ix)
+    ty = ly + gauss3(cym, c0, cyp)
+    tx = lx + gauss3(cxm, c0, cxp)
+    with np.errstate(all="ignore"):
+        peak = np.where(energy > 0, c0 / energy, 0.0)
+    return ty, tx, peak, ly, lx
+
+
+def _zero_mean(stack, weight):
+    """Subtract each window's mean (over unmasked pixels) and zero masked pixels."""
+    if weight is None:
+        stack -= stack.mean(axis=(1, 2), keepdims=True)
+        return stack
+    wsum = np.maximum(weight.sum(axis=(1, 2), keepdims=True), 1.0)
+    stack -= (stack * weight).sum(axis=(1, 2), keepdims=True) / wsum
+    stack *= weight
+    return stack
+
+
+def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window, step, order,
+                      mask_fraction, workers, block_elems, statistics):
+    """One interrogation pass over the whole image, processed in row blocks.
+
+    ``predictor`` is None or ``(rows, cols, pdy, pdx)`` of the previous pass.
+    Returns grid rows/cols, the displacement on this grid (predictor +
+    correlation residual), the peak height, the masked flags and, when
+    ``statistics``, the correlation-statistics uncertainty.
+    """
+    ny, nx = ref.shape
+    rs = window_starts(ny, window, step)
+    cs = window_starts(nx, window, step)
+    grid_r = rs + (window - 1) / 2.0
+    grid_c = cs + (window - 1) / 2.0
+    shape = (rs.size, cs.size)
+    if predictor is None:
+        py = np.zeros(shape)
+        px = np.zeros(shape)
+    else:
+        pr, pc, pdy, pdx = predictor
+        py = _deform.grid_to_points(pr, pc, pdy, grid_r, grid_c).astype(np.float64)
+        px = _deform.grid_to_points(pr, pc, pdx, grid_r, grid_c).astype(np.float64)
+    deform = predictor is not None and (np.any(py) or np.any(px))
+    ry = np.full(shape, np.nan)
+    rx = np.full(shape, np.nan)
+    peak = np.zeros(shape)
+    sy = np.full(shape, np.nan)
+    sx = np.full(shape, np.nan)
+    masked = np.zeros(shape, dtype=bool)
+    c0, c1 = int(cs[0]), int(cs[-1] + window)
+    band = max(1, block_elems // (cs.size * window * window))
+    for b0 in range(0, rs.size, band):
+        sl = slice(b0, b0 + band)
+        r0, r1 = int(rs[b0]), int(rs[sl][-1] + window)
+        if deform:
+            prow = np.arange(r0, r1, dtype=np.float64)
+            pcol = np.arange(c0, c1, dtype=np.float64)
+            dyp = _deform.grid_to_points(pr, pc, pdy, prow, pcol)
+            dxp = _deform.grid_to_points(pr, pc, pdx, prow, pcol)
+            a, b = _deform.deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp,
+                                       order=order, workers=workers)
+            del dyp, dxp
+        else:
+            a, b = ref[r0:r1, c0:c1], meas[r0:r1, c0:c1]
+        A = sliding_window_view(a, (window, window))[::step, ::step]
+        B = sliding_window_view(b, (window, window))[::step, ::step]
+        nbr, nbc = A.shape[:2]
+        A = A.reshape(-1, window, window).astype(np.float32)  # copies
+        B = B.reshape(-1, window, window).astype(np.float32)
+        weight = None
+        if mask is not None and mask[r0:r1, c0:c1].any():
+            M = sliding_window_view(mask[r0:r1, c0:c1], (window, window))[::step, ::step]
+            weight = (~M).reshape(-1, window, window).astype(np.float32)
+            frac = 1.0 - weight.mean(axis=(1, 2))
+            masked[sl] = (frac > mask_fraction).reshape(nbr, nbc)
+        A = _zero_mean(A, weight)
+        B = _zero_mean(B, weight)
+        ty, tx, pk, ly, lx = _correlate_stack(A, B, workers=workers)
+        ry[sl] = ty.reshape(nbr, nbc)
+        rx[sl] = tx.reshape(nbr, nbc)
+        peak[sl] = pk.reshape(nbr, nbc)
+        if statistics:
+            s_y, s_x = correlation_statistics(A, B)
+            sy[sl] = s_y.reshape(nbr, nbc)
+            sx[sl] = s_x.reshape(nbr, nbc)
+    dy = py + ry
+    dx = px + rx
+    return grid_r, grid_c, dy, dx, peak, masked, sy, sx
+
+
+def deformation_bias(image, *, window=16, order=3, size=128, workers=1):
+    """Measure the bias that image deformation itself adds, on this image's texture.
+
+    B-spline interpolation shifts each spatial frequency by a slightly wrong
+    phase; in symmetric deformation these errors add up for the two images
+    and bias converged vectors by a periodic function of ``g = frac(d/2)``
+    (measured on Fourier-shifted dot images: 0.018 px for cubic, 0.006 px
+    for quintic splines).  This function renders exact sub-pixel shifts of a
+    central crop of ``image`` (Fourier shift theorem on its mirror-periodic
+    extension), deforms and correlates them exactly as a converged pass
+    does, and fits the measured residual with ``sum_m b_m sin(2 pi m g)``.
+
+    Returns
+    -------
+    callable
+        ``bias(d)`` [px] for displacement component(s) ``d`` [px]; the
+        corrected estimate is ``d - bias(d)``.
+    """
+    n = int(min(size, *image.shape) // 2 * 2)
+    r0 = (image.shape[0] - n) // 2
+    c0 = (image.shape[1] - n) // 2
+    crop = image[r0:r0 + n, c0:c0 + n].astype(np.float64)
+    ext = np.block([[crop, crop[:, ::-1]], [crop[::-1], crop[::-1, ::-1]]])
+    spec = np.fft.fft2(ext)
+    coef_a = _deform.spline_coefficients(crop.astype(np.float32), order)
+    m = max(window // 2, 4)  # interior margin, away from the crop edges
+    g_samples = np.arange(1, 8) / 16.0
+    res = []
+    for g in g_samples:
+        s = 2.0 * g
+        moved = np.fft.ifft2(ndi.fourier_shift(spec, (s, s))).real[:n, :n].astype(np.float32)
+        coef_b = _deform.spline_coefficients(moved, order)
+        h = np.full((n - 2 * m, n - 2 * m), 0.5 * s, dtype=np.float32)
+        a, b = _deform.deform_pair(coef_a, coef_b, m, n - m, m, n - m, h * 2, h * 2, order=order, workers=workers)
+        A = sliding_window_view(a, (window, window))[:: window // 2, :: window // 2].reshape(-1, window, window)
+        B = sliding_window_view(b, (window, window))[:: window // 2, :: window // 2].reshape(-1, window, window)
+        ty, tx, _, _, _ = _correlate_stack(_zero_mean(A.astype(np.float32), None),
+                                          _zero_mean(B.astype(np.float32), None), workers=workers)
+        res.append(0.5 * (np.median(ty) + np.median(tx)))  # same interpolator on both axes
+    # odd, period-1 function of g that vanishes at g = 0 and 1/2
+    basis = np.sin(2 * np.pi * np.outer(g_samples, np.arange(1, 4)))
+    coef, *_ = np.linalg.lstsq(basis, np.asarray(res), rcond=None)
+
+    def bias(d):
+        g = np.mod(np.asarray(d, dtype=float) / 2.0, 1.0)
+        return sum(c * np.sin(2 * np.pi * (k + 1) * g) for k, c in enumerate(coef))
+
+    bias.coefficients = coef
+    return bias
+
+
+def midpoint_to_reference(rows, cols, dy, dx, exclude=None, *, iterations=3):
+    """Re-reference vectors from pair mid-points to reference-image positions.
+
+    Symmetric deformation measures the displacement of the features whose
+    mid-point ``p + d/2`` sits at a grid point; the contract wants the
+    displacement of the feature that sits at ``p`` in the reference, so
+    ``d_ref(p) = d_mid(p + d_ref(p) / 2)``, solved by fixed-point iteration
+    on a bicubic spline of the field.  The change is second order
+    (d . grad d / 2): measured 0.020 -> 0.007 px rms on a 4 px Gaussian field.
+    """
+    if min(dy.shape) < 2:
+        return dy, dx
+    fill = exclude if exclude is not None else ~np.isfinite(dy)
+    sy = replace_invalid(dy, fill)
+    sx = replace_invalid(dx, fill)
+    ky, kx = min(3, len(rows) - 1), min(3, len(cols) - 1)
+    spl_y = RectBivariateSpline(rows, cols, sy, kx=ky, ky=kx)
+    spl_x = RectBivariateSpline(rows, cols, sx, kx=ky, ky=kx)
+    rr, cc = np.meshgrid(rows, cols, indexing="ij")
+    ry, rx = sy.copy(), sx.copy()
+    for _ in range(iterations):
+        qy = np.clip(rr + ry / 2, rows[0], rows[-1])
+        qx = np.clip(cc + rx / 2, cols[0], cols[-1])
+        ry, rx = spl_y.ev(qy, qx), spl_x.ev(qy, qx)
+    keep = ~np.isfinite(dy) | ~np.isfinite(dx)
+    return np.where(keep, dy, ry), np.where(keep, dx, rx)
+
+
+def _smooth(field, size):
+    if size <= 1 or min(field.shape) < size:
+        return field
+    return ndi.uniform_filter(field, size=size, mode="nearest")
+
+
+def _pass_schedule(windows, final_iterations):
+    sizes = [int(w) for w in windows]
+    return sizes[:-1] + [sizes[-1]] * max(1, int(final_iterations))
+
+
+def _check_options(shape, windows, overlap, final_iterations, order, mask_fraction):
+    if len(windows) == 0:
+        raise InputError("windows must list at least one interrogation window size")
+    for w in windows:
+        if int(w) != w or w < 4:
+            raise InputError(f"window sizes must be integers >= 4 px, got {w}")
+        if w > min(shape):
+            raise InputError(f"window {int(w)} px is larger than the image ({shape[0]} x {shape[1]} px)")
+    if not 0.0 <= overlap < 1.0:
+        raise InputError(f"overlap must be a fraction in [0, 1), got {overlap}")
+    if int(final_iterations) < 1:
+        raise InputError(f"final_iterations must be >= 1, got {final_iterations}")
+    if order not in (1, 3, 5):
+        raise InputError(f"deformation interpolation order must be 1, 3 or 5, got {order}")
+    if not 0.0 <= mask_fraction < 1.0:
+        raise InputError(f"mask_fraction must be in [0, 1), got {mask_fraction}")
+
+
+def _downsample(image, f):
+    """Block mean over f x f pixels (image cropped to a multiple of f)."""
+    if f == 1:
+        return image
+    ny, nx = (image.shape[0] // f) * f, (image.shape[1] // f) * f
+    return image[:ny, :nx].reshape(ny // f, f, nx // f, f).mean(axis=(1, 3), dtype=np.float32)
+
+
+class _Level:
+    """Images of one pyramid level (block-mean factor ``f``) and their spline coefficients.
+
+    A level pixel q covers full-resolution pixels f*q .. f*q + f-1, so its
+    centre sits at ``p = f*q + (f-1)/2``; displacements scale by ``f``.
+    """
+
+    def __init__(self, ref, meas, mask, f, order):
+        self.f = f
+        self.ref = _downsample(ref, f)
+        self.meas = _downsample(meas, f)
+        self.mask = None if mask is None else (_downsample(mask.astype(np.float32), f) > 0.5)
+        self.coef_ref = _deform.spline_coefficients(self.ref, order)
+        self.coef_meas = _deform.spline_coefficients(self.meas, order)
+
+    def to_level(self, predictor):
+        if predictor is None or self.f == 1:
+            return predictor
+        f, off = self.f, (self.f - 1) / 2.0
+        pr, pc, pdy, pdx = predictor
+        return (pr - off) / f, (pc - off) / f, pdy / f, pdx / f
+
+    def to_full(self, rows, cols, *fields):
+        f, off = self.f, (self.f - 1) / 2.0
+        return (rows * f + off, cols * f + off) + tuple(v * f for v in fields)
+
+
+def _pyramid_factor(window, last_window, max_factor, min_level_window=16):
+    """Block-mean factor for a coarse pass: its window shrinks to >= 16 px on binned images.
+
+    Binning the coarse passes cuts their deformation and FFT cost by f^2
+    (measured: 4 MP pair, 64->32->16 px, 2.4x faster overall); they only
+    supply the predictor, the last passes run at full resolution.
+    """
+    f = 1
+    while 2 * f <= max_factor and window % (2 * f) == 0 and window // (2 * f) >= max(min_level_window, last_window):
+        f *= 2
+    return f
+
+
+def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, epsilon, threshold,
+               mask_fraction, initial, workers, block_elems, max_binning, correct_bias, smooth):
+    """Run the pass schedule; return the last pass and its validation."""
+    schedule = _pass_schedule(windows, final_iterations)
+    levels = {}
+    predictor = None
+    if initial is not None:
+        iy, ix = (float(v) for v in initial)
+        predictor = (np.array([0.0, ref.shape[0] - 1.0]), np.array([0.0, ref.shape[1] - 1.0]),
+                     np.full((2, 2), iy), np.full((2, 2), ix))
+    for k, window in enumerate(schedule):
+        last = k == len(schedule) - 1
+        f = 1 if window == schedule[-1] else _pyramid_factor(window, schedule[-1], max_binning)
+        if f not in levels:
+            levels[f] = _Level(ref, meas, mask if mask.any() else None, f, order)
+        lev = levels[f]
+        lw = window // f
+        step = max(1, int(round(lw * (1.0 - overlap))))
+        gr, gc, dy, dx, peak, masked, sy, sx = _correlation_pass(
+            lev.ref, lev.meas, lev.coef_ref, lev.coef_meas, lev.mask, lev.to_level(predictor),
+            window=lw, step=step, order=order, mask_fraction=mask_fraction, workers=workers,
+            block_elems=block_elems, statistics=last,
+        )
+        gr, gc, dy, dx = lev.to_full(gr, gc, dy, dx)
+        bad = ~np.isfinite(dy) | ~np.isfinite(dx) | (peak <= 0)
+        dyv = np.where(bad | masked, np.nan, dy)
+        dxv = np.where(bad | masked, np.nan, dx)
+        bad |= normalized_median_test(dyv, dxv, epsilon=epsilon, threshold=threshold) & ~masked
+        if last:
+            dy, dx = midpoint_to_reference(gr, gc, dy, dx, bad | masked)
+            if correct_bias and order > 1:
+                bias = deformation_bias(ref, window=lw, order=order, workers=workers)
+                dy = dy - bias(dy)
+                dx = dx - bias(dx)
+            return gr, gc, dy, dx, peak, masked, bad & ~masked, sy, sx, schedule
+        # predictor for the next pass: outliers and masked vectors replaced by neighbours, then
+        # low-pass filtered over one window (3 x 3 vectors at 50 % overlap): without it the
+        # noise of a pass is frozen into the next (iterative deformation keeps the high
+        # frequencies of the predictor; Schrijer & Scarano 2008).  Measured on uniform
+        # shifts: rms 0.010 -> see docs/displacement.md.
+        predictor = (gr, gc, _smooth(replace_invalid(dy, bad | masked), smooth),
+                     _smooth(replace_invalid(dx, bad | masked), smooth))
+
+
+def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overlap=0.5,
+              final_iterations=2, order=3, epsilon=0.1, threshold=2.0, mask_fraction=0.5,
+              initial=None, max_binning=4, correct_bias=True, smooth=3, workers=None, block_elems=1 << 22) -> DisplacementField:
+    """Multi-pass window-deformation cross-correlation of an image pair.
+
+    Windows are interrogated from large to small; before every pass after
+    the first, both images are deformed symmetrically by the current
+    predictor (the reference sampled at ``p - d/2``, the measurement at
+    ``p + d/2``; cubic B-spline interpolation).  Each pass correlates all
+    windows of a row block at once with batched real FFTs (zero-mean windows,
+    normalised), locates the peak with a three-point Gaussian fit, and
+    replaces outliers found by the normalised median test before the next
+    pass.  The last window size is repeated ``final_iterations`` times so the
+    residual displacement converges to ~0, which removes peak locking.
+
+    Parameters
+    ----------
+    reference, measurement : ndarray, 2-D
+        Grey images of equal shape.
+    mask : ndarray of bool, optional
+        True where there is no data (model, support); such pixels are left out
+        of the correlation and windows with more than ``mask_fraction`` masked
+        pixels are reported as masked.
+    windows : sequence of int
+        Interrogation window sizes [px] of the passes, large to small.
+    overlap : float
+        Fractional overlap of neighbouring windows (0.5: step = window / 2).
+    final_iterations : int
+        Number of passes with the last window size.
+    order : {1, 3, 5}
+        B-spline order of the image deformation.
+    epsilon, threshold : float
+        Normalised median test parameters [px, -] (Westerweel & Scarano 2005).
+    mask_fraction : float
+        Masked-pixel fraction above which a window is masked.
+    initial : (float, float), optional
+        Uniform predictor (dy, dx) [px] for the first pass (e.g. a known
+        camera shift larger than a quarter of the first window).
+    workers : int, optional
+        Threads for the FFTs and the deformation (default: all cores).
+    block_elems : int
+        Pixels per block of window stacks (bounds memory; 4 M -> ~ 100 MB).
+
+    Returns
+    -------
+    DisplacementField
+        Vectors at the window centres of the last pass; ``sigma_dy, sigma_dx``
+        from correlation statistics (see :func:`correlation_statistics`).
+
+    References
+    ----------
+    Scarano, F. (2002). Iterative image deformation methods in PIV. Meas. Sci.
+    Technol. 13, R1-R19.
+    Westerweel, J. and Scarano, F. (2005). Universal outlier detection for PIV
+    data. Exp. Fluids 39, 1096-1100.
+    Raffel, M. et al. (2018). Particle Image Velocimetry - A Practical Guide,
+    3rd ed., Springer (three-point Gaussian peak fit).
+    """
+    ref, meas, m = check_pair(reference, measurement, mask)
+    windows = tuple(windows)
+    _check_options(ref.shape, windows, overlap, final_iterations, order, mask_fraction)
+    workers = _deform.resolve_workers(workers)
+    gr, gc, dy, dx, peak, masked, invalid, sy, sx, schedule = _multipass(
+        ref, meas, m, windows=windows, overlap=overlap, final_iterations=final_iterations,
+        order=order, epsilon=epsilon, threshold=threshold, mask_fraction=mask_fraction,
+        initial=initial, workers=workers, block_elems=int(block_elems), max_binning=int(max_binning), correct_bias=bool(correct_bias), smooth=int(smooth),
+    )
+    gone = masked | invalid
+    params = dict(windows=windows, overlap=overlap, final_iterations=final_iterations, order=order,
+                  epsilon=epsilon, threshold=threshold, mask_fraction=mask_fraction, passes=schedule,
+                  uncertainty="correlation statistics (Wieneke 2015)",
+                  peak_height=np.where(gone, np.nan, peak))
+    return DisplacementField(
+        dy=np.where(gone, np.nan, dy), dx=np.where(gone, np.nan, dx), rows=gr.astype(float),
+        cols=gc.astype(float), masked=masked, invalid=invalid,
+        sigma_dy=np.where(gone, np.nan, sy), sigma_dx=np.where(gone, np.nan, sx),
+        camera_shift=(0.0, 0.0), method="correlation", params=params,
+    )
