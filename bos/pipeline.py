@@ -11,8 +11,10 @@ over these two functions; notebooks can call the stages one by one
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
+import sys
 import warnings as warnings_module
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -252,28 +254,64 @@ def measure_displacement(inputs: Inputs, exp: Experiment):
 # ---------------------------------------------------------------------------
 
 
-def grid_coordinates(rows_px: np.ndarray, cols_px: np.ndarray, *, image_shape: tuple[int, int],
-                     object_pixel_m: float) -> tuple[np.ndarray, np.ndarray]:
-    """Object-plane coordinates [m] of vector-grid rows/columns (architecture.md).
+def _grid_index(position_px: float, grid_px: np.ndarray) -> float:
+    """Fractional index on a vector grid of a pixel position (linear, extrapolated)."""
+    g = np.asarray(grid_px, float)
+    if g.size < 2:
+        return 0.0
+    return float((position_px - g[0]) / (g[1] - g[0]))
 
-    ``y = (row - (N_rows - 1)/2) * object_pixel_m`` (y down), likewise x.
+
+def reference_mask(region: Any, rows_px: np.ndarray, cols_px: np.ndarray) -> np.ndarray:
+    """Vector-grid points of the reconstruction reference region (ambient gas).
+
+    ``"left"``/``"right"``/``"top"``/``"bottom"``: the outermost grid column/row
+    on that side; ``"edges"``: all four; ``(row0, row1, col0, col1)``: grid
+    points whose pixel position lies in that box (end exclusive).
+
+    Raises
+    ------
+    ConfigError
+        The box contains no grid point.
     """
-    rc = (image_shape[0] - 1) / 2.0
-    cc = (image_shape[1] - 1) / 2.0
-    return ((np.asarray(rows_px, float) - rc) * object_pixel_m,
-            (np.asarray(cols_px, float) - cc) * object_pixel_m)
+    shape = (len(rows_px), len(cols_px))
+    out = np.zeros(shape, bool)
+    if isinstance(region, str):
+        if region in ("left", "edges"):
+            out[:, 0] = True
+        if region in ("right", "edges"):
+            out[:, -1] = True
+        if region in ("top", "edges"):
+            out[0, :] = True
+        if region in ("bottom", "edges"):
+            out[-1, :] = True
+        return out
+    r0, r1, c0, c1 = region
+    rr = (np.asarray(rows_px) >= r0) & (np.asarray(rows_px) < r1)
+    cc = (np.asarray(cols_px) >= c0) & (np.asarray(cols_px) < c1)
+    out[np.ix_(rr, cc)] = True
+    if not out.any():
+        raise ConfigError(f"reconstruction.reference_region {list(region)} contains no vector-grid point "
+                          "(make the box larger than the vector spacing)")
+    return out
 
 
-def _axis_position_m(exp: Experiment, disp, image_shape, object_pixel_m: float) -> float | None:
-    axis_px = exp.reconstruction.axis_px
-    if axis_px is None:
+def _dirichlet(boundary: str, region: Any, n_ref: float) -> dict | None:
+    """Dirichlet edges for the planar integration: ambient index on the edges."""
+    if boundary == "neumann":
         return None
-    n = image_shape[1] if exp.reconstruction.axis == "vertical" else image_shape[0]
-    return (axis_px - (n - 1) / 2.0) * object_pixel_m
+    if boundary == "dirichlet":
+        return {e: n_ref for e in ("top", "bottom", "left", "right")}
+    if isinstance(region, str):
+        return {e: n_ref for e in (("top", "bottom", "left", "right") if region == "edges" else (region,))}
+    raise ConfigError("reconstruction.boundary = 'mixed' needs reference_region to be an edge name")
 
 
 def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None, medium=None):
     """Deflection, coordinates and density/temperature from a displacement field.
+
+    Planar objects use the oblique-ray (finite camera distance) correction of
+    :mod:`bos.reconstruct.deflection`; axisymmetric ones the paraxial model.
 
     Returns
     -------
@@ -283,30 +321,35 @@ def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None
 
     rig = rig or exp.rig()
     medium = medium or exp.medium_model()
-    eps_y, eps_x = rec.deflection_from_displacement(disp.dy, disp.dx, rig=rig)
-    y_m, x_m = grid_coordinates(disp.rows, disp.cols, image_shape=image_shape,
-                                object_pixel_m=rig.object_pixel_m)
-    kind = exp.reconstruction.kind
+    r = exp.reconstruction
+    kind = r.kind
+    slopes = rec.ray_slopes(disp.rows, disp.cols, rig=rig, shape=image_shape) if kind == "planar" else None
+    eps_y, eps_x = rec.deflection_from_displacement(disp.dy, disp.dx, rig=rig, ray_slopes=slopes)
+    y_m, x_m = rec.object_coordinates(disp.rows, disp.cols, rig=rig, shape=image_shape)
     if kind == "none":
         return eps_y, eps_x, y_m, x_m, None
-    sig_y, sig_x = rec.deflection_from_displacement(disp.sigma_dy, disp.sigma_dx, rig=rig)
-    sig_y, sig_x = np.abs(sig_y), np.abs(sig_x)
-    nodata = disp.masked | disp.invalid | ~np.isfinite(eps_y) | ~np.isfinite(eps_x)
-    r = exp.reconstruction
+    sig_y, sig_x = (np.abs(v) for v in rec.deflection_from_displacement(disp.sigma_dy, disp.sigma_dx, rig=rig))
+    step_y = float(np.median(np.diff(disp.rows))) if len(disp.rows) > 1 else 1.0
+    step_x = float(np.median(np.diff(disp.cols))) if len(disp.cols) > 1 else 1.0
+    pix = rig.object_pixel_m
+    common = dict(medium=medium, masked=disp.masked, invalid=disp.invalid, sigma_y=sig_y, sigma_x=sig_x,
+                  y_m=y_m, x_m=x_m)
     if kind == "planar":
         width = exp.geometry.object_width_m
         if width is None:
             raise ConfigError("missing value: geometry.object_width_mm (needed for a planar reconstruction)")
-        dens = rec.planar_density(
-            eps_y, eps_x, y_m=y_m, x_m=x_m, width_m=width, medium=medium, mask=nodata,
-            sigma_eps=(sig_y, sig_x) if r.weighted else None, boundary=r.boundary,
-            reference_region=r.reference_region, solver=r.solver)
+        region = reference_mask(r.reference_region, disp.rows, disp.cols)
+        dirichlet = _dirichlet(r.boundary, r.reference_region, float(medium.ambient_index))
+        dens = rec.planar_density(eps_y, eps_x, spacing_m=(step_y * pix, step_x * pix), width_m=width,
+                                  reference_region=region, weighted=r.weighted, dirichlet=dirichlet,
+                                  method=r.solver, ray_slopes=slopes, **common)
     else:
-        dens = rec.axisymmetric_density(
-            eps_y, eps_x, y_m=y_m, x_m=x_m, medium=medium, mask=nodata,
-            sigma_eps=(sig_y, sig_x), axis=r.axis,
-            axis_m=_axis_position_m(exp, disp, image_shape, rig.object_pixel_m),
-            method=r.abel_method)
+        vertical = r.axis == "vertical"
+        axis_pos = None
+        if r.axis_px is not None:
+            axis_pos = _grid_index(r.axis_px, disp.cols if vertical else disp.rows)
+        dens = rec.axisymmetric_density(eps_y, eps_x, spacing_m=(step_x if vertical else step_y) * pix,
+                                        axis=r.axis, axis_position=axis_pos, method=r.abel_method, **common)
     return eps_y, eps_x, y_m, x_m, dens
 
 
@@ -323,12 +366,21 @@ def _finite_stat(a, fn, default=float("nan")) -> float:
     return float(fn(a)) if a.size else default
 
 
+def invalid_flags(disp, dens) -> np.ndarray:
+    """Rejected vectors: by the displacement validation or lost in the reconstruction."""
+    inv = np.asarray(disp.invalid, bool)
+    if dens is not None and getattr(dens, "invalid", None) is not None:
+        inv = inv | (np.asarray(dens.invalid, bool) & ~np.asarray(disp.masked, bool))
+    return inv
+
+
 def summarize(disp, dens, *, medium, warnings: list[str]) -> dict[str, Any]:
     """The short numbers a user wants first (JSON-ready)."""
     mag = np.hypot(disp.dy, disp.dx)
     sig = np.hypot(disp.sigma_dy, disp.sigma_dx)
     n = mag.size
-    valid = ~(disp.masked | disp.invalid) & np.isfinite(mag)
+    invalid = invalid_flags(disp, dens)
+    valid = ~(disp.masked | invalid) & np.isfinite(mag)
     unmasked = int((~disp.masked).sum())
     out: dict[str, Any] = {
         "vectors": int(n),
@@ -336,7 +388,7 @@ def summarize(disp, dens, *, medium, warnings: list[str]) -> dict[str, Any]:
         "peak_displacement_px": _finite_stat(mag, np.max),
         "valid_fraction": float(valid.sum() / unmasked) if unmasked else 0.0,
         "masked_fraction": float(disp.masked.sum() / n) if n else 0.0,
-        "invalid_fraction": float(disp.invalid.sum() / n) if n else 0.0,
+        "invalid_fraction": float(invalid.sum() / n) if n else 0.0,
         "median_uncertainty_px": _finite_stat(np.where(valid, sig, np.nan), np.median),
         "camera_shift_px": [float(v) for v in (disp.camera_shift if disp.camera_shift is not None else (0.0, 0.0))],
         "method": disp.method,
@@ -358,8 +410,8 @@ def summarize(disp, dens, *, medium, warnings: list[str]) -> dict[str, Any]:
             "median_density_uncertainty_kg_m3": _finite_stat(getattr(dens, "sigma_density", None), np.median),
         })
         extra = getattr(dens, "info", None) or {}
-        if "asymmetry" in extra:
-            out["asymmetry"] = extra["asymmetry"]
+        if extra.get("asymmetry") is not None:
+            out["asymmetry"] = jsonable(extra["asymmetry"])
     out["warnings"] = list(warnings)
     return out
 
@@ -427,6 +479,29 @@ def cautions(exp: Experiment) -> list[str]:
 # ---------------------------------------------------------------------------
 
 
+@contextlib.contextmanager
+def quiet_native_stdout():
+    """Silence text that compiled extensions print on file descriptor 1.
+
+    pyamg's Ruge-Stuben setup (C++) prints "Inner denominator was zero."
+    straight to stdout, which would break ``--json`` output; Python-level
+    output is unaffected.  Does nothing if descriptor 1 cannot be duplicated.
+    """
+    try:
+        sys.stdout.flush()
+        saved = os.dup(1)
+    except (OSError, ValueError, AttributeError):
+        yield
+        return
+    try:
+        with open(os.devnull, "wb") as null:
+            os.dup2(null.fileno(), 1)
+        yield
+    finally:
+        os.dup2(saved, 1)
+        os.close(saved)
+
+
 def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> RunResult:
     """Run every stage of one experiment and return the result (writes nothing).
 
@@ -457,8 +532,9 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
     disp = measure_displacement(inputs, exp)
     _tick(progress, "displacement", 1.0)
     _tick(progress, "reconstruction", 0.0)
-    eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
-                                               rig=rig, medium=medium)
+    with quiet_native_stdout():
+        eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
+                                                   rig=rig, medium=medium)
     _tick(progress, "reconstruction", 1.0)
     warnings = list(inputs.warnings)
     warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]
@@ -566,7 +642,8 @@ def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, 
         "deflection_x": _var(result.eps_x, "rad", "light-ray deflection angle, x component (toward higher index)"),
         "masked": _var(np.asarray(disp.masked, np.uint8), "1", "user mask: 1 = no data requested here",
                        flag_meanings="measured masked", **flag),
-        "invalid": _var(np.asarray(disp.invalid, np.uint8), "1", "validation: 1 = vector rejected as outlier",
+        "invalid": _var(np.asarray(invalid_flags(disp, result.density), np.uint8), "1",
+                        "validation: 1 = vector rejected (outlier, no correlation peak, not reconstructable)",
                         flag_meanings="valid rejected", **flag),
     }
     dens = result.density

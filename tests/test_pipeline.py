@@ -1,8 +1,6 @@
 """bos.pipeline: stage helpers, result layout, files written by save_run.
 
 Outside sources of the checks:
-* object-plane coordinates: the formula of docs/architecture.md with the
-  rig's object pixel (x = (col - (N-1)/2) * p, y likewise, y down);
 * window schedule: halving per pass (64 -> 32 -> 16) is common practice in
   multi-pass correlation (Scarano 2002);
 * profiles: bilinear interpolation reproduces a linear field exactly
@@ -24,6 +22,7 @@ import bos
 from bos import config, pipeline
 from bos.displacement import DisplacementField
 from bos.errors import ConfigError, DataFileError
+from bos.reconstruct import object_coordinates
 
 xr = pytest.importorskip("xarray")
 
@@ -41,13 +40,16 @@ def test_window_schedule_halves_per_pass():
         pipeline.window_schedule(16, 32, 2)
 
 
-def test_grid_coordinates_follow_architecture_formula():
-    # docs/architecture.md: x = (col - (N-1)/2) * p, y = (row - (N-1)/2) * p, y down
-    rows, cols = np.array([8.0, 16.0, 24.0]), np.array([0.0, 99.5, 199.0])
-    y, x = pipeline.grid_coordinates(rows, cols, image_shape=(33, 200), object_pixel_m=5e-5)
-    np.testing.assert_allclose(y, [-8 * 5e-5, 0.0, 8 * 5e-5], atol=1e-15)
-    np.testing.assert_allclose(x, [-99.5 * 5e-5, 0.0, 99.5 * 5e-5], atol=1e-15)
-    assert y[2] > y[0]  # y grows with the row index: points down
+def test_reference_mask_on_the_vector_grid():
+    rows, cols = np.arange(8.0, 64.0, 8.0), np.arange(8.0, 96.0, 8.0)
+    left = pipeline.reference_mask("left", rows, cols)
+    assert left[:, 0].all() and left.sum() == rows.size
+    edges = pipeline.reference_mask("edges", rows, cols)
+    assert edges.sum() == 2 * rows.size + 2 * cols.size - 4
+    box = pipeline.reference_mask((0, 20, 80, 96), rows, cols)      # rows 8, 16; cols 80, 88
+    assert box.sum() == 4 and box[0, -2] and box[1, -1]
+    with pytest.raises(ConfigError, match="no vector-grid point"):
+        pipeline.reference_mask((1, 3, 1, 3), rows, cols)
 
 
 def test_camera_motion_region_choices(tmp_path):
@@ -106,7 +108,7 @@ def _crafted(tmp_path: Path):
     rig, med = exp.rig(), exp.medium_model()
     rows = np.arange(8.0, 200.0, 8.0)
     cols = np.arange(8.0, 300.0, 8.0)
-    y, x = pipeline.grid_coordinates(rows, cols, image_shape=(208, 308), object_pixel_m=rig.object_pixel_m)
+    y, x = object_coordinates(rows, cols, rig=rig, shape=(208, 308))
     yy, xx = np.meshgrid(y, x, indexing="ij")
     temperature = 300.0 + 2000.0 * xx + 500.0 * yy          # linear: bilinear profiles are exact
     masked = np.zeros(yy.shape, bool)
@@ -200,3 +202,13 @@ def test_save_run_refuses_a_file_as_output_directory(tmp_path):
     (tmp_path / "out").write_text("not a directory")
     with pytest.raises(DataFileError, match="output directory"):
         pipeline.save_run(result, exp)
+
+
+def test_experiment_file_doc_lists_every_key():
+    # docs/experiment-file.md is generated from bos.config.SCHEMA; keep it in sync
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "experiment-file.md").read_text(encoding="utf-8")
+    assert config.schema_markdown() in doc
+    for section, specs in config.SCHEMA.items():
+        assert f"### [{section}]" in doc
+        for key in specs:
+            assert f"| `{key}` |" in doc, f"{section}.{key} undocumented"
