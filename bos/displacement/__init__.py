@@ -13,11 +13,13 @@ import numpy as np
 from ..errors import InputError
 from .correlation import correlate
 from .field import DisplacementField
+from .flow import optical_flow
 from .motion import camera_region, fit_camera_motion, remove_camera_motion
 from .validation import normalized_median_test, replace_invalid
 
 METHODS = {
     "correlation": correlate,
+    "flow": optical_flow,
 }
 
 __all__ = [
@@ -25,6 +27,7 @@ __all__ = [
     "DisplacementField",
     "estimate",
     "correlate",
+    "optical_flow",
     "normalized_median_test",
     "replace_invalid",
     "camera_region",
