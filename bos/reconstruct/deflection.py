@@ -41,7 +41,8 @@ def _arrays(*arrays):
     return out
 
 
-def deflection_from_displacement(dy_px, dx_px, *, rig, ray_slopes=None):
+def deflection_from_displacement(dy_px, dx_px, *, rig, ray_slopes=None, rows_px=None, cols_px=None,
+                                 position_fraction: float = 1.0):
     """Deflection angles [rad] from sensor displacements [px].
 
     Parameters
@@ -55,6 +56,12 @@ def deflection_from_displacement(dy_px, dx_px, *, rig, ray_slopes=None):
         Chief-ray slopes (t_y, t_x) from :func:`ray_slopes`; when given, the
         oblique-ray geometry is inverted exactly (linearised in eps):
         delta = (I - t t^T / c^2) dX / (Z_D c).  Without it: paraxial.
+    rows_px, cols_px : 1-D ndarray, optional
+        Pixel positions of the vector grid.  When given, each vector is moved
+        from the feature's reference position to the camera pixel of its ray
+        (:func:`displacement_at_ray_pixels` with ``position_fraction``); this
+        removes a bias of d . grad(d) / 2 per vector (2 % of the centreline
+        temperature rise of a 100 K column with 1.8 px displacements).
 
     Returns
     -------
@@ -66,6 +73,10 @@ def deflection_from_displacement(dy_px, dx_px, *, rig, ray_slopes=None):
     Eq. 1 [D]); sign: docs/architecture.md.
     """
     dy, dx = _arrays(dy_px, dx_px)
+    if (rows_px is None) != (cols_px is None):
+        raise InputError("give both rows_px and cols_px (or neither)")
+    if rows_px is not None:
+        dy, dx = displacement_at_ray_pixels(dy, dx, rows_px=rows_px, cols_px=cols_px, fraction=position_fraction)
     s = float(rig.sensitivity_px_per_rad)
     if not (np.isfinite(s) and s > 0):
         raise InputError(f"rig sensitivity must be positive, got {s} px/rad")
@@ -141,3 +152,48 @@ def planar_index_gradient(eps_y, eps_x, *, width_m: float, n0: float, ray_slopes
     c = np.sqrt(1.0 + ty**2 + tx**2)
     dot = ty * ey + tx * ex
     return k * (ey + ty * dot) / c, k * (ex + tx * dot) / c
+
+
+def displacement_at_ray_pixels(dy_px, dx_px, *, rows_px, cols_px, fraction: float = 1.0):
+    """Move displacement vectors from feature positions to the camera pixels whose rays they belong to.
+
+    The deflection belongs to the camera ray, i.e. to the pixel where a
+    feature is seen in the *measurement* image.  A vector reported at the
+    reference position p of a feature (the architecture convention) belongs
+    to the ray at p + d; an estimator that reports the midpoint of the
+    feature's motion (symmetric window deformation: reference sampled at
+    p - d/2, measurement at p + d/2) belongs to p + d/2, so pass
+    ``fraction=0.5`` for it.  The field is resampled back onto the grid by
+    the first-order Taylor step d(g) = d(g + f d) - f d . grad d (error
+    O(f^2 |d|^2 |d''|), sub-1e-3 px for displacements of a few px on
+    windows of >= 8 px).
+
+    Parameters
+    ----------
+    dy_px, dx_px : (ny, nx) ndarray
+        Displacement [px] on the vector grid (NaN allowed; no correction
+        next to NaN where the gradient is unknown).
+    rows_px, cols_px : 1-D ndarray
+        Pixel positions of the grid rows and columns.
+    fraction : float
+        Where along the motion the estimator places its vectors (1: at the
+        reference position, 0.5: midpoint, 0: already at the ray pixel).
+
+    Returns
+    -------
+    (dy, dx) on the same grid, now indexed by ray pixel.
+    """
+    dy, dx = _arrays(dy_px, dx_px)
+    rows = np.asarray(rows_px, dtype=float)
+    cols = np.asarray(cols_px, dtype=float)
+    if dy.ndim != 2 or dy.shape != (rows.size, cols.size):
+        raise InputError(f"displacement shape {dy.shape} does not match rows x cols ({rows.size}, {cols.size})")
+    if rows.size < 2 or cols.size < 2 or fraction == 0:
+        return dy, dx
+    sy, sx = fraction * dy, fraction * dx
+    out = []
+    for d in (dy, dx):
+        gr, gc = np.gradient(d, rows, cols)
+        corr = sy * gr + sx * gc
+        out.append(d - np.where(np.isfinite(corr), corr, 0.0))
+    return out[0], out[1]

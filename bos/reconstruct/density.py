@@ -179,8 +179,8 @@ def planar_density(eps_y, eps_x, *, spacing_m, width_m: float, medium, reference
                    dirichlet=dirichlet, reference_region=reference_region, method=method)
     n = integrate_gradient(gy, gx, reference_value=n_ref, **options)
     if has_sigma:
-        sigma_n = integrate_gradient_uncertainty(np.where(masked | invalid, np.nan, gy), gx, sigma_y=sgy,
-                                                 sigma_x=sgx, n_samples=n_samples, seed=seed, **options)
+        sigma_n = integrate_gradient_uncertainty(gy, gx, sigma_y=sgy, sigma_x=sgx, n_samples=n_samples,
+                                                 seed=seed, **options)
     else:
         sigma_n = np.zeros(ey.shape)
     info = {"method": method, "width_m": float(width_m), "reference_index": n_ref, "weighted": weights is not None,
