@@ -49,6 +49,8 @@ class Inputs:
         Warnings raised while reading (lossy compression, bit-depth mix ...).
     info : dict
         Per-image metadata (bit depth, format, EXIF) for provenance.
+    exif : dict
+        EXIF of the reference image (``focal_length_m``, ``f_number`` ...).
     """
 
     reference: np.ndarray
@@ -58,6 +60,7 @@ class Inputs:
     sha256: dict[str, str]
     warnings: list[str] = field(default_factory=list)
     info: dict[str, Any] = field(default_factory=dict)
+    exif: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass
@@ -151,7 +154,7 @@ def load_inputs(exp: Experiment) -> Inputs:
     info = {label: _image_info(img) for label, img in (("reference", ref), ("measurement", meas))}
     sha = {k: store.file_sha256(p) for k, p in paths.items()}
     return Inputs(reference=ref.data, measurement=meas.data, mask=mask, paths=paths, sha256=sha,
-                  warnings=_unique(warnings), info=info)
+                  warnings=_unique(warnings), info=info, exif=dict(ref.exif or {}))
 
 
 def _image_info(img: Any) -> dict[str, Any]:
@@ -165,6 +168,22 @@ def _image_info(img: Any) -> dict[str, Any]:
 
 def _unique(items: list[str]) -> list[str]:
     return list(dict.fromkeys(items))
+
+
+def with_exif_defaults(exp: Experiment, exif: dict[str, Any]) -> tuple[Experiment, list[str]]:
+    """Fill the focal length from the image EXIF when the experiment file has none.
+
+    Explicit settings always win; returns the (possibly updated) experiment
+    and a note for the summary when a value was taken from EXIF.
+    """
+    import dataclasses
+
+    f = exif.get("focal_length_m") if exif else None
+    if exp.camera.focal_length_m is not None or not f:
+        return exp, []
+    cam = dataclasses.replace(exp.camera, focal_length_m=float(f))
+    note = f"camera.focal_length_mm not given: {float(f) * 1e3:g} mm taken from the image EXIF"
+    return dataclasses.replace(exp, camera=cam), [note]
 
 
 # ---------------------------------------------------------------------------
@@ -523,11 +542,12 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
     """
     import bos
 
-    rig = exp.rig()
-    medium = exp.medium_model()
     _tick(progress, "read images", 0.0)
     inputs = load_inputs(exp)
     _tick(progress, "read images", 1.0)
+    exp, exif_notes = with_exif_defaults(exp, inputs.exif)
+    rig = exp.rig()
+    medium = exp.medium_model()
     _tick(progress, "displacement", 0.0)
     disp = measure_displacement(inputs, exp)
     _tick(progress, "displacement", 1.0)
@@ -536,7 +556,7 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
         eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
                                                    rig=rig, medium=medium)
     _tick(progress, "reconstruction", 1.0)
-    warnings = list(inputs.warnings)
+    warnings = list(inputs.warnings) + exif_notes
     warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]
     warnings += [str(w) for w in (getattr(dens, "warnings", None) or [])]
     warnings = _unique(warnings)

@@ -72,6 +72,7 @@ SCENES = {
         "wall_col_frac": 0.18,      # plate face position as a fraction of the image width
         "delta_m": 4.0e-3,          # e-folding thickness of the layer at mid height
         "leading_edge_m": 0.08,     # distance of the leading edge below the bottom edge
+        "camera_shift_px": (0.35, -0.25),  # the tripod was nudged between the two pictures
     },
 }
 
@@ -223,7 +224,7 @@ window_px = 64
 final_window_px = 16
 passes = 3
 overlap = 0.5
-camera_motion = "none"
+camera_motion = "{camera_motion}"
 
 [reconstruction]
 {recon}
@@ -259,7 +260,7 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
         y_prof = y_m[int(0.8 * (len(y_m) - 1))]
         extra = dict(
             title="Hot plume above a soldering-iron tip (axisymmetric, vertical axis)",
-            width_line="", mask_line="", source_kind="plume",
+            width_line="", mask_line="", source_kind="plume", camera_motion="none",
             description="soldering iron, tip just below the bottom edge of the picture",
             recon=f'kind = "axisymmetric"\naxis = "vertical"\naxis_px = {(shape[1] - 1) / 2:g}\n',
             profile=f"[[{_fmt_mm(x_m[0] * 0.6)}, {_fmt_mm(y_prof)}], [{_fmt_mm(x_m[-1] * 0.6)}, {_fmt_mm(y_prof)}]]",
@@ -279,6 +280,8 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
             title="Heated vertical plate in a span-wise 2-D enclosure (planar boundary layer)",
             width_line=f"object_width_mm = {SCENES['plate']['width_m'] * 1e3:g}\n",
             mask_line='mask = "mask.png"\n', source_kind="hot-air",
+            # the camera shift is measured where the gas is ambient (the reference region)
+            camera_motion="mask",
             description="electrically heated aluminium plate, 100 mm deep enclosure with glass side walls",
             recon='kind = "planar"\nreference_region = "right"\nboundary = "neumann"\n',
             profile=f"[[{_fmt_mm(x_wall)}, {_fmt_mm(y_prof)}], [{_fmt_mm(x_m[-1])}, {_fmt_mm(y_prof)}]]",
@@ -288,7 +291,8 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
     scale = r.sensitivity_px_per_rad  # M * Z_D / pitch  [px/rad]
     d_y, d_x = -scale * eps_y, -scale * eps_x
     pair = synthetic.render_pair(shape=shape, displacement=(d_y, d_x), dot_diameter_px=2.8, density=0.55,
-                                 seed=SCENES[scene]["seed"], bit_depth=16, noise=True)
+                                 seed=SCENES[scene]["seed"], bit_depth=16, noise=True,
+                                 camera_shift=SCENES[scene].get("camera_shift_px", (0.0, 0.0)))
     ref, meas = pair.reference, pair.measurement
     if mask is not None:
         # the opaque plate: dark, textureless, the same in both pictures

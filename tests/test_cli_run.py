@@ -343,10 +343,13 @@ def test_demo_runs_and_reports_truth(tmp_path):
     assert "demo results in" in res.stdout
     import re
 
-    m = re.search(r"recovered ([\d.]+) K, true ([\d.]+) K", res.stdout)
+    m = re.search(r"recovered ([\d.]+) K, true ([\d.]+) K; rms error ([\d.]+) K", res.stdout)
     assert m, res.stdout
-    recovered, true = float(m.group(1)), float(m.group(2))
-    # the demo truth comes from the forward model of datasets/make_demo.py (numerical
-    # line-of-sight quadrature of the plume); Abel inversion near the axis amplifies
-    # noise, so 10 % on the peak rise
-    assert recovered == pytest.approx(true, rel=0.10)
+    recovered, true, rms = (float(v) for v in m.groups())
+    # the demo truth comes from the forward model of datasets/make_demo.py (trapezoid
+    # line-of-sight quadrature of the plume's temperature field, analytic rendering);
+    # Abel inversion amplifies noise near the axis: 5 % on the peak rise, rms error
+    # below 2 % of the ~75 K rise (the reconstruction issue's targets are 2 % / 3 %)
+    assert 70.0 < true < 76.0
+    assert recovered == pytest.approx(true, rel=0.05)
+    assert rms < 0.02 * true

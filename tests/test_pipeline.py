@@ -212,3 +212,15 @@ def test_experiment_file_doc_lists_every_key():
         assert f"### [{section}]" in doc
         for key in specs:
             assert f"| `{key}` |" in doc, f"{section}.{key} undocumented"
+
+
+def test_exif_focal_length_fills_only_a_missing_value():
+    exif = {"focal_length_m": 0.085, "f_number": 4.0}
+    given = config.experiment_from_dict({"camera": {"focal_length_mm": 50}})
+    same, notes = pipeline.with_exif_defaults(given, exif)
+    assert same.camera.focal_length_m == pytest.approx(0.050) and notes == []   # explicit settings win
+    missing = config.experiment_from_dict({})
+    filled, notes = pipeline.with_exif_defaults(missing, exif)
+    assert filled.camera.focal_length_m == pytest.approx(0.085)
+    assert "EXIF" in notes[0] and "85 mm" in notes[0]
+    assert pipeline.with_exif_defaults(missing, {})[0] is missing
