@@ -100,10 +100,13 @@ def register(app: typer.Typer) -> None:
             return
         for rep in reports:
             print_summary(dict(rep["summary"], cautions=[]), title=f"demo: {rep['scene']}")
+        typer.echo("recovered vs true (truth from datasets/make_demo.py):")
+        for rep in reports:
             c = rep["truth_check"]
             if c:
-                typer.echo(f"{rep['scene']}: peak temperature rise recovered {c['recovered_peak_rise_k']:.1f} K, "
+                typer.echo(f"  {rep['scene']}: peak temperature rise recovered {c['recovered_peak_rise_k']:.1f} K, "
                            f"true {c['true_peak_rise_k']:.1f} K; rms error {c['rms_error_k']:.2f} K "
                            f"over {c['compared_points']} vectors")
-            typer.echo(f"{rep['scene']}: result {rep['result']}")
+        for rep in reports:
+            typer.echo(f"{rep['scene']} result: {rep['result']}")
         typer.echo(f"demo results in {out_dir.resolve()}")

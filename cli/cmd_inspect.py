@@ -59,14 +59,15 @@ def register(app: typer.Typer) -> None:
 
         print_summary(info["summary"], title=f"{result}")
         table = Table(title="variables", header_style="bold")
-        for col in ("name", "dims", "units", "min", "max", "long name"):
-            table.add_column(col)
+        for col in ("name", "shape", "units", "min", "max"):
+            table.add_column(col, no_wrap=True)
         for name, v in info["variables"].items():
-            lo = v.get("min", v.get("true_fraction"))
-            hi = v.get("max")
-            table.add_row(name, "x".join(str(s) for s in v["shape"]), str(v["units"]),
-                          "-" if lo is None else f"{lo:.6g}", "-" if hi is None else f"{hi:.6g}",
-                          str(v["long_name"]))
+            lo, hi = v.get("min"), v.get("max")
+            shape, units = "x".join(str(s) for s in v["shape"]), str(v["units"])
+            if "true_fraction" in v:
+                table.add_row(name, shape, units, f"{100 * v['true_fraction']:.1f} % set", "(flag)")
+                continue
+            table.add_row(name, shape, units, "-" if lo is None else f"{lo:.6g}", "-" if hi is None else f"{hi:.6g}")
         console = Console()
         console.print(table)
         a = info["attributes"]
