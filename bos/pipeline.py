@@ -754,7 +754,8 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
 
     Each file is written atomically (temporary file + rename).  The result
     file is written first; figures follow (skipped when
-    ``output.figures = false``).
+    ``output.figures = false``).  If any file fails, the files already
+    written by this call are removed again, so no partial result is left.
 
     Returns
     -------
@@ -776,12 +777,20 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     attrs["coordinate_note"] = Y_DOWN_NOTE
     attrs["title"] = f"BOS result {exp.output.name}"
     attrs["Conventions"] = "CF-1.8"
-    written = [store.write_result(paths["result"], coords=coords, variables=variables, attrs=attrs) or paths["result"]]
-    line = exp.output.profile or _default_profile(result)
-    samples = sample_profile(as_result_data(result, gas=gas), line)
-    written.append(write_profile_csv(paths["profile_csv"], samples))
-    if exp.output.figures:
-        written += _figures(result, paths, line, samples)
+    written: list[Path] = []
+    try:
+        written.append(Path(store.write_result(paths["result"], coords=coords, variables=variables, attrs=attrs)))
+        line = exp.output.profile or _default_profile(result)
+        samples = sample_profile(as_result_data(result, gas=gas), line)
+        written.append(write_profile_csv(paths["profile_csv"], samples))
+        if exp.output.figures:
+            written += _figures(result, paths, line, samples)
+    except BaseException:
+        # all or nothing: a run that fails half-way leaves no result behind
+        for p in written:
+            with contextlib.suppress(OSError):
+                Path(p).unlink()
+        raise
     return [Path(p) for p in written]
 
 

@@ -224,3 +224,15 @@ def test_exif_focal_length_fills_only_a_missing_value():
     assert filled.camera.focal_length_m == pytest.approx(0.085)
     assert "EXIF" in notes[0] and "85 mm" in notes[0]
     assert pipeline.with_exif_defaults(missing, {})[0] is missing
+
+
+def test_save_run_leaves_nothing_when_a_later_file_fails(tmp_path, monkeypatch):
+    exp, result, _ = _crafted(tmp_path)
+
+    def broken(*args, **kwargs):
+        raise OSError("disk full (simulated)")
+
+    monkeypatch.setattr(pipeline, "write_profile_csv", broken)
+    with pytest.raises(OSError, match="disk full"):
+        pipeline.save_run(result, exp)
+    assert list((tmp_path / "out").iterdir()) == []
