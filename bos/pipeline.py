@@ -451,6 +451,23 @@ def jsonable(obj: Any) -> Any:
     return obj
 
 
+def _small_items(params: dict[str, Any], *, max_size: int = 32) -> dict[str, Any]:
+    """Scalars, strings and short numeric lists of a parameter dict (JSON-ready).
+
+    Per-vector diagnostics (2-D arrays) and objects are left out of the
+    attributes; the fields themselves are stored as variables.
+    """
+    out: dict[str, Any] = {}
+    for key, value in params.items():
+        if isinstance(value, (str, bool, int, float, np.generic)) or value is None:
+            out[key] = jsonable(value)
+        elif isinstance(value, (list, tuple, np.ndarray)):
+            arr = np.asarray(value, dtype=object)
+            if arr.size <= max_size and arr.ndim <= 2:
+                out[key] = jsonable(value)
+    return out
+
+
 def _section_dict(section: Any) -> dict[str, Any]:
     import dataclasses
 
@@ -570,7 +587,8 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
         "camera": _section_dict(exp.camera),
         "geometry": _section_dict(exp.geometry),
         "processing": _section_dict(exp.processing),
-        "displacement_params": jsonable(getattr(disp, "params", {}) or {}),
+        "displacement_params": _small_items(getattr(disp, "params", {}) or {}),
+        "reconstruction_info": _small_items(getattr(dens, "info", {}) or {}),
         "reconstruction": _section_dict(exp.reconstruction),
         "source": _section_dict(exp.source),
         "inputs": {k: str(v) for k, v in inputs.paths.items()},

@@ -353,3 +353,28 @@ def test_demo_runs_and_reports_truth(tmp_path):
     assert 70.0 < true < 76.0
     assert recovered == pytest.approx(true, rel=0.05)
     assert rms < 0.02 * true
+
+
+def test_polygon_mask_kept_separate_from_invalid(tmp_path, layer_pair):
+    # a rectangular "model" in front of the background, given as a polygon in the file
+    write_png16(tmp_path / "ref.png", layer_pair[0])
+    write_png16(tmp_path / "meas.png", layer_pair[1])
+    exp = write_experiment(tmp_path, "ref.png", "meas.png")
+    text = exp.read_text().replace("[processing]", "mask_polygons = [[[200, 60], [280, 60], [280, 140], [200, 140]]]\n\n"
+                                                   "[processing]")
+    exp.write_text(text)
+    out = _run_json(exp, "--no-figures")
+    x_true, t_true, _ = layer_truth()
+    with xr_open(out["files"][0]) as ds:
+        masked, invalid = ds.masked.values.astype(bool), ds.invalid.values.astype(bool)
+        rows, cols = ds.row_px.values, ds.col_px.values
+        inside = ((rows[:, None] > 64) & (rows[:, None] < 136)) & ((cols[None, :] > 204) & (cols[None, :] < 276))
+        assert masked[inside].all() and not invalid[inside].any()
+        assert not masked[:, :10].any()
+        t = ds.temperature.values
+        assert np.isnan(t[masked]).all()
+        ok = ~masked & ~invalid
+        truth = np.interp(ds.x.values, x_true, t_true)[None, :] * np.ones_like(t)
+        # same tolerance as the unmasked run: the masked block does not disturb the integration
+        assert np.sqrt(np.mean((t[ok] - truth[ok]) ** 2)) < 0.015 * LAYER_DT_K
+    assert 0.0 < out["summary"]["masked_fraction"] < 0.2
