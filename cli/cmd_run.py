@@ -109,7 +109,8 @@ def register(app: typer.Typer) -> None:
     @app.command("run")
     @handle_errors
     def run(
-        experiment: Optional[Path] = typer.Argument(None, help="experiment TOML file (options below override it)"),
+        experiment: Optional[Path] = typer.Argument(
+            None, help="experiment TOML file (options below override it; without a file the options describe the run)"),
         reference: Optional[Path] = typer.Option(None, "--reference", help="reference image (no flow)"),
         measurement: Optional[Path] = typer.Option(None, "--measurement", help="measurement image (with flow)"),
         mask: Optional[Path] = typer.Option(None, "--mask", help="mask image, nonzero = no data"),
@@ -123,6 +124,15 @@ def register(app: typer.Typer) -> None:
         kind: Optional[str] = typer.Option(None, "--kind", help="reconstruction: planar, axisymmetric or none"),
         axis_px: Optional[float] = typer.Option(None, "--axis-px", help="symmetry-axis position [px] (axisymmetric)"),
         width_mm: Optional[float] = typer.Option(None, "--width-mm", help="object width along the line of sight [mm]"),
+        focal_length_mm: Optional[float] = typer.Option(None, "--focal-length-mm", help="lens focal length [mm]"),
+        pixel_pitch_um: Optional[float] = typer.Option(None, "--pixel-pitch-um", help="sensor pixel pitch [um]"),
+        f_number: Optional[float] = typer.Option(None, "--f-number", help="lens f-number"),
+        camera_to_object_m: Optional[float] = typer.Option(None, "--camera-to-object-m", help="Z_A [m]"),
+        object_to_background_m: Optional[float] = typer.Option(None, "--object-to-background-m", help="Z_D [m]"),
+        camera_to_background_m: Optional[float] = typer.Option(None, "--camera-to-background-m", help="Z_B [m]"),
+        gas: Optional[str] = typer.Option(None, "--gas", help="gas name (air, co2, he ...)"),
+        temperature_c: Optional[float] = typer.Option(None, "--temperature-c", help="ambient temperature [degC]"),
+        pressure_pa: Optional[float] = typer.Option(None, "--pressure-pa", help="static pressure [Pa]"),
         no_figures: bool = typer.Option(False, "--no-figures", help="skip the figures"),
         as_json: bool = typer.Option(False, "--json", help="print the summary as JSON"),
     ) -> None:
@@ -145,6 +155,15 @@ def register(app: typer.Typer) -> None:
             "reconstruction.kind": kind,
             "reconstruction.axis_px": axis_px,
             "geometry.object_width_mm": width_mm,
+            "camera.focal_length_mm": focal_length_mm,
+            "camera.pixel_pitch_um": pixel_pitch_um,
+            "camera.f_number": f_number,
+            "geometry.camera_to_object_m": camera_to_object_m,
+            "geometry.object_to_background_m": object_to_background_m,
+            "geometry.camera_to_background_m": camera_to_background_m,
+            "medium.gas": gas,
+            "medium.temperature_c": temperature_c,
+            "medium.pressure_pa": pressure_pa,
         }
         exp = load_experiment(experiment, overrides=overrides)
         result, files = run_and_save(exp, quiet=as_json)
