@@ -67,9 +67,15 @@ def check_texture(image: np.ndarray, name: str, mask: np.ndarray | None = None) 
     every pixel at the clip level) and pixel noise only (no correlation
     between neighbouring pixels, so nothing a correlation could follow).
     """
-    step = max(1, int(np.sqrt(image.size / 0.5e6)))  # subsample big images (rows)
-    img = image[::step] if step > 1 else image
-    keep = None if mask is None or not mask.any() else ~(mask[::step] if step > 1 else mask)
+    # statistics from pairs of adjacent rows spread over the whole image
+    # (~256 k pixels; the full image costs 0.07 s per 0.25 MP)
+    ny, nx = image.shape
+    step = max(1, int(ny * nx / 2.6e5))
+    idx = np.arange(0, ny - 1, step)
+    img, below = image[idx], image[idx + 1]
+    keep = keep_below = None
+    if mask is not None and mask.any():
+        keep, keep_below = ~mask[idx], ~mask[idx + 1]
     vals = img[keep] if keep is not None else img.ravel()
     lo, hi = float(vals.min()), float(vals.max())
     if hi - lo <= 1e-6 * max(abs(hi), abs(lo), 1e-30):
@@ -78,7 +84,7 @@ def check_texture(image: np.ndarray, name: str, mask: np.ndarray | None = None) 
         frac = float(np.count_nonzero(vals == level)) / vals.size
         if frac >= SATURATED_FRACTION:
             raise NoTextureError(f"no texture in the {name} image: {100 * frac:.0f} % of its pixels are {word}")
-    rho = _neighbour_correlation(img, keep)
+    rho = _neighbour_correlation(img, below, keep, keep_below)
     if rho < NOISE_CORRELATION:
         raise NoTextureError(
             f"no texture in the {name} image: it looks like pixel noise only "
@@ -86,19 +92,21 @@ def check_texture(image: np.ndarray, name: str, mask: np.ndarray | None = None) 
         )
 
 
-def _neighbour_correlation(img: np.ndarray, keep: np.ndarray | None) -> float:
-    """Mean lag-one correlation coefficient along rows and columns."""
+def _neighbour_correlation(img, below, keep, keep_below) -> float:
+    """Mean lag-one correlation coefficient along rows and between adjacent rows."""
+    img = img.astype(np.float64)
+    below = below.astype(np.float64)
     out = []
     for a, b, k in (
         (img[:, :-1], img[:, 1:], None if keep is None else keep[:, :-1] & keep[:, 1:]),
-        (img[:-1], img[1:], None if keep is None else keep[:-1] & keep[1:]),
+        (img, below, None if keep is None else keep & keep_below),
     ):
         if k is not None:
             a, b = a[k], b[k]
-        a = a.astype(np.float64).ravel()
-        b = b.astype(np.float64).ravel()
-        a -= a.mean()
-        b -= b.mean()
-        den = np.sqrt(np.dot(a, a) * np.dot(b, b))
-        out.append(np.dot(a, b) / den if den > 0 else 0.0)
-    return float(np.mean(out))
+        if a.size < 2:
+            continue
+        a = a - a.mean()
+        b = b - b.mean()
+        den = np.sqrt(np.vdot(a, a) * np.vdot(b, b))
+        out.append(np.vdot(a, b) / den if den > 0 else 0.0)
+    return float(np.mean(out)) if out else 1.0

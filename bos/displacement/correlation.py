@@ -36,7 +36,8 @@ def _correlate_stack(a, b, *, workers):
     n, wy, wx = a.shape
     fa = sfft.rfft2(a, workers=workers)
     fb = sfft.rfft2(b, workers=workers)
-    fb *= fa.conj()
+    np.conjugate(fa, out=fa)
+    fb *= fa
     del fa
     c = sfft.irfft2(fb, s=(wy, wx), workers=workers)
     del fb
@@ -263,13 +264,19 @@ class _Level:
     centre sits at ``p = f*q + (f-1)/2``; displacements scale by ``f``.
     """
 
-    def __init__(self, ref, meas, mask, f, order):
+    def __init__(self, ref, meas, mask, f):
         self.f = f
         self.ref = _downsample(ref, f)
         self.meas = _downsample(meas, f)
         self.mask = None if mask is None else (_downsample(mask.astype(np.float32), f) > 0.5)
-        self.coef_ref = _deform.spline_coefficients(self.ref, order)
-        self.coef_meas = _deform.spline_coefficients(self.meas, order)
+        self._coef = {}
+
+    def coefficients(self, order):
+        """Spline coefficients of both images for ``order`` (computed once)."""
+        if order not in self._coef:
+            self._coef[order] = (_deform.spline_coefficients(self.ref, order),
+                                 _deform.spline_coefficients(self.meas, order))
+        return self._coef[order]
 
     def to_level(self, predictor):
         if predictor is None or self.f == 1:
@@ -310,12 +317,12 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         last = k == len(schedule) - 1
         f = 1 if window == schedule[-1] else _pyramid_factor(window, schedule[-1], max_binning)
         if f not in levels:
-            levels[f] = _Level(ref, meas, mask if mask.any() else None, f, order)
+            levels[f] = _Level(ref, meas, mask if mask.any() else None, f)
         lev = levels[f]
         lw = window // f
         step = max(1, int(round(lw * (1.0 - overlap))))
         gr, gc, dy, dx, peak, masked, sy, sx = _correlation_pass(
-            lev.ref, lev.meas, lev.coef_ref, lev.coef_meas, lev.mask, lev.to_level(predictor),
+            lev.ref, lev.meas, *lev.coefficients(order), lev.mask, lev.to_level(predictor),
             window=lw, step=step, order=order, mask_fraction=mask_fraction, workers=workers,
             block_elems=block_elems, statistics=last,
         )

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from concurrent.futures import ThreadPoolExecutor
 from functools import partial
 
 import numpy as np
@@ -39,8 +38,7 @@ def _lk_strip(coef_ref, coef_meas, weight, dyp, dxp, r0, r1, *, sigma, iteration
         prods = [gy * gy, gy * gx, gx * gx, gy * e, gx * e]
         if weight is not None:
             prods = [p * weight for p in prods]
-        with ThreadPoolExecutor(max(1, workers)) as ex:  # ndimage releases the GIL
-            syy, syx, sxx, sye, sxe = ex.map(filt, prods)
+        syy, syx, sxx, sye, sxe = _deform.pool(workers).map(filt, prods)  # ndimage releases the GIL
         del prods
         det = syy * sxx - syx * syx
         with np.errstate(all="ignore"):

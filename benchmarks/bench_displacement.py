@@ -1,0 +1,209 @@
+"""Speed, peak memory and accuracy of bos.displacement against openpiv and scikit-image.
+
+Synthetic pairs are rendered with bos.synthetic (2.5 px dots, density 0.5,
+12 bit, shot + read noise): a strong smooth field (Gaussian-blob form,
+peak |d| = 3 px) and a weak one (peak 0.2 px).  Every method runs on the same
+pair in a fresh child process; the child reports its wall time (median of
+``--repeat`` runs, libraries imported before timing) and its peak resident
+memory (VmHWM from /proc/self/status of the child, i.e. interpreter +
+libraries + the two float32 images + the method; the baseline after loading
+the images is printed too.  ru_maxrss is not used because Linux carries the
+parent's high-water mark across fork/exec).
+
+Errors are rms over valid vectors of sqrt((e_y^2 + e_x^2) / 2) against the
+exact field at reference-image positions (the convention of
+docs/architecture.md).  Symmetric-deformation codes naturally estimate the
+displacement at the pair's mid-point, so for the reference libraries the
+better of the two conventions is credited to them.  openpiv's vectors are
+evaluated at their true window centres (its reported x, y minus 0.5 px).
+
+References, all measured in the same run:
+- openpiv 0.26 windef, 3 passes 64 -> 32 -> 16 px, 50 % overlap (symmetric
+  deformation, cubic), same final window and vector spacing as ours;
+- scikit-image optical_flow_tvl1 and optical_flow_ilk (defaults; images
+  scaled to [0, 1] as they expect).
+
+Usage:
+    python benchmarks/bench_displacement.py            # 2048 x 2048 (4 MP)
+    python benchmarks/bench_displacement.py --big      # 6000 x 4000 (24 MP), correlation vs openpiv
+    python benchmarks/bench_displacement.py --size 1024 --repeat 3 --skip tvl1
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+
+STRONG_PX = 3.0
+WEAK_PX = 0.2
+
+
+def blob(amp, shape):
+    """d = -k (y, x) exp(-r^2/s^2), |d| peaking at ``amp`` px (r = s / sqrt 2)."""
+    ny, nx = shape
+    s = min(shape) / 5.0
+    k = amp * np.sqrt(2) * np.exp(0.5)
+
+    def f(rows, cols):
+        y = (rows - (ny - 1) / 2) / s
+        x = (cols - (nx - 1) / 2) / s
+        g = np.exp(-(x * x + y * y))
+        return -k * y * g, -k * x * g
+
+    return f
+
+
+def truth(fun, rr, cc, shift=1.0, iterations=30):
+    """Exact d at positions (rr, cc): solve d = fun(p + shift * d) (renderer: d is a function of x = p + d)."""
+    dy = np.zeros_like(rr, dtype=float)
+    dx = np.zeros_like(rr, dtype=float)
+    for _ in range(iterations):
+        dy, dx = fun(rr + shift * dy, cc + shift * dx)
+    return dy, dx
+
+
+def rms(dy, dx, ty, tx, valid):
+    e = ((dy - ty) ** 2 + (dx - tx) ** 2)[valid] / 2
+    return float(np.sqrt(np.mean(e)))
+
+
+# ----------------------------------------------------------------------------- child side
+def run_method(method, ref, meas):
+    """Return (rows 2-D, cols 2-D, dy, dx, valid) in image coordinates, y down."""
+    if method.startswith("ours"):
+        from bos.displacement import estimate
+
+        opts = {"ours-correlation": dict(method="correlation"),
+                "ours-correlation-fast": dict(method="correlation", final_iterations=1),
+                "ours-flow": dict(method="flow")}[method]
+        f = estimate(ref, meas, **opts)
+        rr, cc = np.meshgrid(f.rows, f.cols, indexing="ij")
+        return rr, cc, f.dy, f.dx, f.valid
+    if method == "openpiv":
+        from openpiv import windef
+        from openpiv.pyprocess import get_rect_coordinates
+        from openpiv.settings import PIVSettings
+
+        s = PIVSettings()
+        s.windowsizes, s.overlap, s.num_iterations = (64, 32, 16), (32, 16, 8), 3
+        _, _, u, v, flags = windef.simple_multipass(ref, meas, s)
+        X, Y = get_rect_coordinates(ref.shape, 16, 8)
+        return Y - 0.5, X - 0.5, -np.asarray(v), np.asarray(u), ~np.asarray(flags, dtype=bool)
+    from skimage.registration import optical_flow_ilk, optical_flow_tvl1
+
+    scale = float(max(ref.max(), meas.max()))
+    fn = optical_flow_tvl1 if method == "tvl1" else optical_flow_ilk
+    v, u = fn(ref / scale, meas / scale)
+    rr, cc = np.mgrid[0:ref.shape[0], 0:ref.shape[1]]
+    return rr, cc, v, u, np.ones(ref.shape, dtype=bool)
+
+
+def vm_hwm_mb():
+    """Peak resident set size of this process [MB] (Linux /proc/self/status VmHWM)."""
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024.0
+    return float("nan")
+
+
+def child(args):
+    if args.method.startswith("ours"):
+        import bos.displacement  # noqa: F401  (imports are not timed)
+    elif args.method == "openpiv":
+        import openpiv.windef  # noqa: F401
+    else:
+        import skimage.registration  # noqa: F401
+    ref = np.load(os.path.join(args.data, f"{args.field}_ref.npy"))
+    meas = np.load(os.path.join(args.data, f"{args.field}_meas.npy"))
+    base = vm_hwm_mb()
+    times = []
+    for _ in range(args.repeat):
+        t0 = time.perf_counter()
+        rr, cc, dy, dx, valid = run_method(args.method, ref, meas)
+        times.append(time.perf_counter() - t0)
+    peak = vm_hwm_mb()
+    fun = blob(STRONG_PX if args.field == "strong" else WEAK_PX, ref.shape)
+    valid = valid & np.isfinite(dy) & np.isfinite(dx)
+    err_ref = rms(dy, dx, *truth(fun, rr, cc, 1.0), valid)
+    err_mid = rms(dy, dx, *truth(fun, rr, cc, 0.5), valid)
+    err = err_ref if args.method.startswith("ours") else min(err_ref, err_mid)
+    print(json.dumps(dict(time=float(np.median(times)), peak_mb=peak, base_mb=base, rms=err,
+                          rms_reference_positions=err_ref, valid=float(valid.mean()), vectors=int(dy.size))))
+
+
+# ----------------------------------------------------------------------------- parent side
+def measure(method, field, data, repeat):
+    cmd = [sys.executable, __file__, "--child", "--method", method, "--field", field, "--data", data,
+           "--repeat", str(repeat)]
+    out = subprocess.run(cmd, capture_output=True, text=True)
+    if out.returncode != 0:
+        return dict(error=out.stderr.strip().splitlines()[-1] if out.stderr.strip() else "failed")
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main():
+    p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--size", type=int, default=2048, help="square image side [px] (default 2048 = 4 MP)")
+    p.add_argument("--big", action="store_true", help="6000 x 4000 (24 MP); correlation vs openpiv only")
+    p.add_argument("--repeat", type=int, default=1, help="timed runs per method (median reported)")
+    p.add_argument("--skip", nargs="*", default=[], help="methods to leave out (openpiv tvl1 ilk flow ...)")
+    p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
+    p.add_argument("--method", help=argparse.SUPPRESS)
+    p.add_argument("--field", help=argparse.SUPPRESS)
+    p.add_argument("--data", help=argparse.SUPPRESS)
+    args = p.parse_args()
+    if args.child:
+        return child(args)
+
+    from bos.synthetic import render_pair
+
+    shape = (4000, 6000) if args.big else (args.size, args.size)
+    methods = ["ours-correlation", "ours-correlation-fast", "openpiv"]
+    if not args.big:
+        methods += ["ours-flow", "tvl1", "ilk"]
+    methods = [m for m in methods if m not in args.skip and m.replace("ours-", "") not in args.skip]
+    print(f"image {shape[0]} x {shape[1]} px ({shape[0] * shape[1] / 1e6:.0f} MP), repeat {args.repeat}, "
+          f"{os.cpu_count()} cores; strong peak {STRONG_PX} px, weak peak {WEAK_PX} px")
+    results = {}
+    with tempfile.TemporaryDirectory() as data:
+        for field, amp in (("strong", STRONG_PX), ("weak", WEAK_PX)):
+            t0 = time.perf_counter()
+            pair = render_pair(shape=shape, displacement=blob(amp, shape), seed=7, dtype=np.float32)
+            np.save(os.path.join(data, f"{field}_ref.npy"), pair.reference.astype(np.float32))
+            np.save(os.path.join(data, f"{field}_meas.npy"), pair.measurement.astype(np.float32))
+            del pair
+            print(f"rendered {field} pair in {time.perf_counter() - t0:.1f} s")
+            for m in methods:
+                results[(m, field)] = r = measure(m, field, data, args.repeat)
+                if "error" in r:
+                    print(f"  {m:22s} {field:6s} FAILED: {r['error']}")
+                else:
+                    print(f"  {m:22s} {field:6s} {r['time']:7.2f} s  peak {r['peak_mb']:6.0f} MB "
+                          f"(images loaded {r['base_mb']:5.0f} MB)  rms {r['rms']:.4f} px  valid {r['valid']:.3f}")
+
+    def ratio(ours, ref):
+        out = []
+        for field in ("strong", "weak"):
+            a, b = results.get((ours, field), {}), results.get((ref, field), {})
+            if "time" in a and "time" in b:
+                out.append(f"{field}: speed x{b['time'] / a['time']:.1f}, rms {a['rms']:.4f} vs {b['rms']:.4f} "
+                           f"(ratio {a['rms'] / b['rms']:.2f}), peak memory {a['peak_mb']:.0f} vs {b['peak_mb']:.0f} MB")
+        return "; ".join(out) or "n/a"
+
+    print("\nRATIOS (reference time / ours; rms ours / reference, < 1 is better)")
+    for ours, ref in (("ours-correlation", "openpiv"), ("ours-correlation-fast", "openpiv"),
+                      ("ours-flow", "tvl1"), ("ours-flow", "ilk")):
+        if ours in methods and ref in methods:
+            print(f"  {ours} vs {ref}: {ratio(ours, ref)}")
+
+
+if __name__ == "__main__":
+    main()
