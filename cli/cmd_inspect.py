@@ -71,8 +71,8 @@ def register(app: typer.Typer) -> None:
         console = Console()
         console.print(table)
         a = info["attributes"]
-        console.print(f"software: bos-toolkit {a.get('software_version', '?')}", highlight=False)
+        console.print(f"software: bos-toolkit {a.get('software_version', '?')}", highlight=False, markup=False)
         for k, v in (a.get("inputs") or {}).items():
-            console.print(f"{k}: {v}  sha256 {(a.get('input_sha256') or {}).get(k, '?')[:16]}…", highlight=False)
+            console.print(f"{k}: {v}  sha256 {(a.get('input_sha256') or {}).get(k, '?')[:16]}…", highlight=False, markup=False)
         if a.get("coordinate_note"):
-            console.print(f"coordinates: {a['coordinate_note']}", highlight=False)
+            console.print(f"coordinates: {a['coordinate_note']}", highlight=False, markup=False)

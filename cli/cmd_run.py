@@ -44,6 +44,7 @@ def _fmt(value: Any, fmt: str) -> str:
 def print_summary(summary: dict[str, Any], *, title: str, files: list[Path] | None = None) -> None:
     """Print the run summary as a table (stdout), then warnings and files."""
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     console = Console()
@@ -56,13 +57,13 @@ def print_summary(summary: dict[str, Any], *, title: str, files: list[Path] | No
             table.add_row(label, _fmt(summary[key], fmt), unit)
     console.print(table)
     for w in summary.get("warnings") or []:
-        console.print(f"[yellow]warning:[/] {w}", highlight=False)
+        console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
     for c in summary.get("cautions") or []:
-        console.print(f"[red]caution:[/] {c}", highlight=False)
+        console.print(f"[red]caution:[/] {escape(str(c))}", highlight=False)
     if files:
         console.print("written:", highlight=False)
         for f in files:
-            console.print(f"  {f}", highlight=False, soft_wrap=True)
+            console.print(f"  {escape(str(f))}", highlight=False, soft_wrap=True)
 
 
 def make_progress():
