@@ -125,6 +125,9 @@ def fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.ndarray, 
             (x0, y0), (x1, y1) = profile_m
             ax.plot([x0 * 1e3, x1 * 1e3], [y0 * 1e3, y1 * 1e3], "w-", lw=1.2)
             ax.plot([x0 * 1e3, x1 * 1e3], [y0 * 1e3, y1 * 1e3], "k--", lw=0.8)
+            # keep the axes on the field even if the line reaches past it (y down)
+            ax.set_xlim(extent[0], extent[1])
+            ax.set_ylim(extent[2], extent[3])
     if suptitle:
         fig.suptitle(suptitle)
     return _save(fig, path, dpi)
