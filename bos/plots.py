@@ -108,6 +108,13 @@ def fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.ndarray, 
     Path
         The written file.
     """
+    fig = build_fields_figure(panels, x_m=x_m, y_m=y_m, suptitle=suptitle, profile_m=profile_m)
+    return _save(fig, path, dpi)
+
+
+def build_fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.ndarray,
+                        suptitle: str | None = None, profile_m: Sequence[Sequence[float]] | None = None):
+    """The :class:`matplotlib.figure.Figure` drawn by :func:`fields_figure` (not saved)."""
     fig = _figure(len(panels))
     axes = fig.subplots(1, len(panels), squeeze=False)[0]
     extent = _extent_mm(x_m, y_m)
@@ -130,7 +137,7 @@ def fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.ndarray, 
             ax.set_ylim(extent[2], extent[3])
     if suptitle:
         fig.suptitle(suptitle)
-    return _save(fig, path, dpi)
+    return fig
 
 
 def profile_figure(distance_m: np.ndarray, curves: Sequence[tuple[np.ndarray, str, str]], *,

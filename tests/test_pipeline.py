@@ -236,3 +236,19 @@ def test_save_run_leaves_nothing_when_a_later_file_fails(tmp_path, monkeypatch):
     with pytest.raises(OSError, match="disk full"):
         pipeline.save_run(result, exp)
     assert list((tmp_path / "out").iterdir()) == []
+
+
+def test_field_figures_use_mm_axes_y_down_and_unit_colour_bars():
+    from bos import plots
+
+    # pixel-centre extent: first/last coordinate -/+ half a spacing, converted m -> mm (arithmetic)
+    x = np.linspace(-0.010, 0.010, 21)
+    y = np.linspace(-0.005, 0.005, 11)
+    data = np.outer(np.ones(11), x)
+    fig = plots.build_fields_figure([plots.Panel(data, "temperature", "K")], x_m=x, y_m=y,
+                                    profile_m=[[-0.02, 0.0], [0.02, 0.0]])
+    ax = fig.axes[0]
+    assert ax.get_xlabel() == "x [mm]" and "down" in ax.get_ylabel()
+    np.testing.assert_allclose(ax.get_xlim(), [-10.5, 10.5])
+    np.testing.assert_allclose(ax.get_ylim(), [5.5, -5.5])      # inverted: y grows downward
+    assert any(a.get_ylabel() == "temperature [K]" for a in fig.axes[1:])   # colour bar
