@@ -15,8 +15,11 @@ Two bench-top scenes photographed against a printed random-dot sheet:
 
 For each scene the script writes 16-bit greyscale PNG reference and
 measurement images, an experiment TOML, and ``truth.npz`` with the exact
-temperature field [K] on the pixel grid (plus the object-plane coordinates),
-so the recovered field can be checked.
+temperature field [K] and the flow displacement [px] (camera shift not
+included) on every 4th pixel, plus the object-plane coordinates [m], so the
+recovered field can be checked (``bos demo`` does).  In the plate scene the
+camera is nudged by (0.35, -0.25) px between the pictures; the experiment
+file removes that shift using the ambient region on the right.
 
 Forward model: temperature -> density (ideal gas at the medium's pressure,
 :class:`bos.media.Medium`) -> refractive index (Gladstone-Dale) ->
