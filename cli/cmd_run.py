@@ -60,6 +60,8 @@ def print_summary(summary: dict[str, Any], *, title: str, files: list[Path] | No
         console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
     for c in summary.get("cautions") or []:
         console.print(f"[red]caution:[/] {escape(str(c))}", highlight=False)
+    if summary.get("cautions"):
+        console.print("safety notes: docs/safety.md", highlight=False, markup=False)
     if files:
         console.print("written:", highlight=False)
         for f in files:
