@@ -62,12 +62,13 @@ def interior(a, k=3):
 
 # --------------------------------------------------------------------- accuracy
 @pytest.mark.parametrize("shift", [(0.0, 0.0), (0.125, 0.3), (0.37, 0.62), (0.5, 0.81), (0.94, 1.0)])
-def test_uniform_fourier_shift_bias_and_rms(shift):
+@pytest.mark.parametrize("deformation", ["symmetric", "measurement"])
+def test_uniform_fourier_shift_bias_and_rms(shift, deformation):
     # Source: Fourier shift theorem (scipy.ndimage.fourier_shift) gives an exact
     # sub-pixel shift of a periodic band-limited image; the interior vectors
     # (away from the non-periodic deformation border) must show bias < 0.002 px.
     a, b = fourier_pair(shift)
-    f = correlate(a, b)
+    f = correlate(a, b, deformation=deformation)
     ey = interior(f.dy) - shift[0]
     ex = interior(f.dx) - shift[1]
     assert abs(np.nanmean(ey)) < BIAS and abs(np.nanmean(ex)) < BIAS
@@ -102,15 +103,16 @@ def _blob_field(amp, n, s):
     return f
 
 
-@pytest.mark.parametrize("amp,bound", [(4.0, RMS_STRONG), (0.25, RMS_WEAK)])
-def test_smooth_field_accuracy(amp, bound):
+@pytest.mark.parametrize("amp,bound,deformation", [(4.0, RMS_STRONG, "symmetric"), (0.25, RMS_WEAK, "symmetric"),
+                                                   (4.0, RMS_STRONG, "measurement")])
+def test_smooth_field_accuracy(amp, bound, deformation):
     # Source: analytic rendering of a known smooth field (bos.synthetic), peak
     # |d| = 4 px (strong) or 0.25 px (weak).
     n = 512
     f_true = _blob_field(amp, n, 128.0)
     p = render_pair(shape=(n, n), displacement=f_true, seed=5)
     assert 0.9 * amp < np.hypot(p.displacement_y, p.displacement_x).max() < 1.1 * amp
-    f = correlate(p.reference, p.measurement)
+    f = correlate(p.reference, p.measurement, deformation=deformation)
     ty, tx = reference_truth(f_true, f.rows, f.cols)
     assert rms_error(f, ty, tx) < bound
     assert f.invalid.mean() < 0.01
@@ -275,6 +277,10 @@ def test_bad_input_messages():
         estimate(a, b, mask=np.ones(a.shape, dtype=bool))
     with pytest.raises(InputError, match="unknown displacement method"):
         estimate(a, b, method="nonsense")
+    with pytest.raises(InputError, match="deformation must be"):
+        estimate(a, b, deformation="both")
+    with pytest.raises(InputError, match="overlap"):
+        estimate(a, b, overlap=1.0)
     with pytest.raises(InputError, match="2-D"):
         estimate(np.stack([a, a, a], -1), np.stack([b, b, b], -1))
 

@@ -105,16 +105,24 @@ def sample(coef: np.ndarray, rr: np.ndarray, cc: np.ndarray, *, order: int, work
     return out
 
 
-def deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp, *, order, workers):
-    """Symmetric deformation of the block rows r0:r1, cols c0:c1.
+def deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp, *, order, workers, symmetric=True, ref=None):
+    """Deform the block rows r0:r1, cols c0:c1 of both images by the predictor.
 
-    The reference is sampled at ``p - d/2`` and the measurement at
-    ``p + d/2`` so that, for the true displacement ``d``, both show the
-    background as it sits half-way (Scarano 2002, central-difference
-    deformation).  ``dyp, dxp`` hold the predictor at every block pixel.
+    Symmetric (default): the reference is sampled at ``p - d/2`` and the
+    measurement at ``p + d/2`` so that, for the true displacement ``d``,
+    both show the background as it sits half-way (Scarano 2002,
+    central-difference deformation); vectors then refer to the pair's
+    mid-point.  One-sided (``symmetric=False``): the reference block is
+    taken as is (``ref``) and the measurement sampled at ``p + d``; vectors
+    refer to reference positions and only one image is interpolated.
+    ``dyp, dxp`` hold the predictor at every block pixel.
     """
     rows = np.arange(r0, r1, dtype=np.float32)[:, None]
     cols = np.arange(c0, c1, dtype=np.float32)[None, :]
+    if not symmetric:
+        a = np.array(ref[r0:r1, c0:c1], dtype=np.float32)
+        b = sample(coef_meas, rows + dyp, cols + dxp, order=order, workers=workers)
+        return a, b
     hy = 0.5 * dyp
     hx = 0.5 * dxp
     a = sample(coef_ref, rows - hy, cols - hx, order=order, workers=workers)

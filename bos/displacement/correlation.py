@@ -72,7 +72,7 @@ def _zero_mean(stack, weight):
 
 
 def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window, step, order,
-                      mask_fraction, workers, block_elems, statistics):
+                      mask_fraction, workers, block_elems, statistics, symmetric=True):
     """One interrogation pass over the whole image, processed in row blocks.
 
     ``predictor`` is None or ``(rows, cols, pdy, pdx)`` of the previous pass.
@@ -111,7 +111,7 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             dyp = _deform.grid_to_points(pr, pc, pdy, prow, pcol)
             dxp = _deform.grid_to_points(pr, pc, pdx, prow, pcol)
             a, b = _deform.deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp,
-                                       order=order, workers=workers)
+                                       order=order, workers=workers, symmetric=symmetric, ref=ref)
             del dyp, dxp
         else:
             a, b = ref[r0:r1, c0:c1], meas[r0:r1, c0:c1]
@@ -141,14 +141,14 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     return grid_r, grid_c, dy, dx, peak, masked, sy, sx
 
 
-def deformation_bias(image, *, window=16, order=3, size=128, workers=1):
+def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetric=True):
     """Measure the bias that image deformation itself adds, on this image's texture.
 
     B-spline interpolation shifts each spatial frequency by a slightly wrong
     phase; in symmetric deformation these errors add up for the two images
     and bias converged vectors by a periodic function of ``g = frac(d/2)``
     (measured on Fourier-shifted dot images: 0.018 px for cubic, 0.006 px
-    for quintic splines).  This function renders exact sub-pixel shifts of a
+    for quintic splines); with one-sided deformation ``g = frac(d)``.  This function renders exact sub-pixel shifts of a
     central crop of ``image`` (Fourier shift theorem on its mirror-periodic
     extension), deforms and correlates them exactly as a converged pass
     does, and fits the measured residual with ``sum_m b_m sin(2 pi m g)``.
@@ -165,16 +165,18 @@ def deformation_bias(image, *, window=16, order=3, size=128, workers=1):
     crop = image[r0:r0 + n, c0:c0 + n].astype(np.float64)
     ext = np.block([[crop, crop[:, ::-1]], [crop[::-1], crop[::-1, ::-1]]])
     spec = np.fft.fft2(ext)
-    coef_a = _deform.spline_coefficients(crop.astype(np.float32), order)
+    coef_a = _deform.spline_coefficients(crop.astype(np.float32), order) if symmetric else None
     m = max(window // 2, 4)  # interior margin, away from the crop edges
     g_samples = np.arange(1, 8) / 16.0
     res = []
+    scale = 0.5 if symmetric else 1.0
     for g in g_samples:
-        s = 2.0 * g
+        s = g / scale
         moved = np.fft.ifft2(ndi.fourier_shift(spec, (s, s))).real[:n, :n].astype(np.float32)
         coef_b = _deform.spline_coefficients(moved, order)
-        h = np.full((n - 2 * m, n - 2 * m), 0.5 * s, dtype=np.float32)
-        a, b = _deform.deform_pair(coef_a, coef_b, m, n - m, m, n - m, h * 2, h * 2, order=order, workers=workers)
+        h = np.full((n - 2 * m, n - 2 * m), s, dtype=np.float32)
+        a, b = _deform.deform_pair(coef_a, coef_b, m, n - m, m, n - m, h, h, order=order, workers=workers,
+                                   symmetric=symmetric, ref=crop.astype(np.float32))
         A = sliding_window_view(a, (window, window))[:: window // 2, :: window // 2].reshape(-1, window, window)
         B = sliding_window_view(b, (window, window))[:: window // 2, :: window // 2].reshape(-1, window, window)
         ty, tx, _, _, _ = _correlate_stack(_zero_mean(A.astype(np.float32), None),
@@ -185,7 +187,7 @@ def deformation_bias(image, *, window=16, order=3, size=128, workers=1):
     coef, *_ = np.linalg.lstsq(basis, np.asarray(res), rcond=None)
 
     def bias(d):
-        g = np.mod(np.asarray(d, dtype=float) / 2.0, 1.0)
+        g = np.mod(np.asarray(d, dtype=float) * scale, 1.0)
         return sum(c * np.sin(2 * np.pi * (k + 1) * g) for k, c in enumerate(coef))
 
     bias.coefficients = coef
@@ -231,7 +233,7 @@ def _pass_schedule(windows, final_iterations):
     return sizes[:-1] + [sizes[-1]] * max(1, int(final_iterations))
 
 
-def _check_options(shape, windows, overlap, final_iterations, order, mask_fraction):
+def _check_options(shape, windows, overlap, final_iterations, order, mask_fraction, deformation):
     if len(windows) == 0:
         raise InputError("windows must list at least one interrogation window size")
     for w in windows:
@@ -245,6 +247,8 @@ def _check_options(shape, windows, overlap, final_iterations, order, mask_fracti
         raise InputError(f"final_iterations must be >= 1, got {final_iterations}")
     if order not in (1, 3, 5):
         raise InputError(f"deformation interpolation order must be 1, 3 or 5, got {order}")
+    if deformation not in ("symmetric", "measurement"):
+        raise InputError(f"deformation must be 'symmetric' or 'measurement', got {deformation!r}")
     if not 0.0 <= mask_fraction < 1.0:
         raise InputError(f"mask_fraction must be in [0, 1), got {mask_fraction}")
 
@@ -271,12 +275,13 @@ class _Level:
         self.mask = None if mask is None else (_downsample(mask.astype(np.float32), f) > 0.5)
         self._coef = {}
 
-    def coefficients(self, order):
-        """Spline coefficients of both images for ``order`` (computed once)."""
-        if order not in self._coef:
-            self._coef[order] = (_deform.spline_coefficients(self.ref, order),
-                                 _deform.spline_coefficients(self.meas, order))
-        return self._coef[order]
+    def coefficients(self, order, symmetric=True):
+        """Spline coefficients (reference or None, measurement) for ``order`` (computed once)."""
+        if ("m", order) not in self._coef:
+            self._coef[("m", order)] = _deform.spline_coefficients(self.meas, order)
+        if symmetric and ("r", order) not in self._coef:
+            self._coef[("r", order)] = _deform.spline_coefficients(self.ref, order)
+        return self._coef.get(("r", order)), self._coef[("m", order)]
 
     def to_level(self, predictor):
         if predictor is None or self.f == 1:
@@ -304,7 +309,7 @@ def _pyramid_factor(window, last_window, max_factor, min_level_window=16):
 
 
 def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, epsilon, threshold,
-               mask_fraction, initial, workers, block_elems, max_binning, correct_bias, smooth):
+               mask_fraction, initial, workers, block_elems, max_binning, correct_bias, smooth, symmetric):
     """Run the pass schedule; return the last pass and its validation."""
     schedule = _pass_schedule(windows, final_iterations)
     levels = {}
@@ -322,9 +327,9 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         lw = window // f
         step = max(1, int(round(lw * (1.0 - overlap))))
         gr, gc, dy, dx, peak, masked, sy, sx = _correlation_pass(
-            lev.ref, lev.meas, *lev.coefficients(order), lev.mask, lev.to_level(predictor),
+            lev.ref, lev.meas, *lev.coefficients(order, symmetric), lev.mask, lev.to_level(predictor),
             window=lw, step=step, order=order, mask_fraction=mask_fraction, workers=workers,
-            block_elems=block_elems, statistics=last,
+            block_elems=block_elems, statistics=last, symmetric=symmetric,
         )
         gr, gc, dy, dx = lev.to_full(gr, gc, dy, dx)
         bad = ~np.isfinite(dy) | ~np.isfinite(dx) | (peak <= 0)
@@ -332,9 +337,10 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         dxv = np.where(bad | masked, np.nan, dx)
         bad |= normalized_median_test(dyv, dxv, epsilon=epsilon, threshold=threshold) & ~masked
         if last:
-            dy, dx = midpoint_to_reference(gr, gc, dy, dx, bad | masked)
+            if symmetric:
+                dy, dx = midpoint_to_reference(gr, gc, dy, dx, bad | masked)
             if correct_bias and order > 1:
-                bias = deformation_bias(ref, window=lw, order=order, workers=workers)
+                bias = deformation_bias(ref, window=lw, order=order, workers=workers, symmetric=symmetric)
                 dy = dy - bias(dy)
                 dx = dx - bias(dx)
             return gr, gc, dy, dx, peak, masked, bad & ~masked, sy, sx, schedule
@@ -349,7 +355,8 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
 
 def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overlap=0.5,
               final_iterations=2, order=3, epsilon=0.1, threshold=2.0, mask_fraction=0.5,
-              initial=None, max_binning=4, correct_bias=True, smooth=3, workers=None, block_elems=1 << 22) -> DisplacementField:
+              initial=None, max_binning=4, correct_bias=True, smooth=3, deformation="symmetric",
+              workers=None, block_elems=1 << 22) -> DisplacementField:
     """Multi-pass window-deformation cross-correlation of an image pair.
 
     Windows are interrogated from large to small; before every pass after
@@ -407,15 +414,17 @@ def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overla
     """
     ref, meas, m = check_pair(reference, measurement, mask)
     windows = tuple(windows)
-    _check_options(ref.shape, windows, overlap, final_iterations, order, mask_fraction)
+    _check_options(ref.shape, windows, overlap, final_iterations, order, mask_fraction, deformation)
     workers = _deform.resolve_workers(workers)
     gr, gc, dy, dx, peak, masked, invalid, sy, sx, schedule = _multipass(
         ref, meas, m, windows=windows, overlap=overlap, final_iterations=final_iterations,
         order=order, epsilon=epsilon, threshold=threshold, mask_fraction=mask_fraction,
         initial=initial, workers=workers, block_elems=int(block_elems), max_binning=int(max_binning), correct_bias=bool(correct_bias), smooth=int(smooth),
+        symmetric=deformation == "symmetric",
     )
     gone = masked | invalid
     params = dict(windows=windows, overlap=overlap, final_iterations=final_iterations, order=order,
+                  deformation=deformation, max_binning=max_binning, smooth=smooth, correct_bias=correct_bias,
                   epsilon=epsilon, threshold=threshold, mask_fraction=mask_fraction, passes=schedule,
                   uncertainty="correlation statistics (Wieneke 2015)",
                   peak_height=np.where(gone, np.nan, peak))
