@@ -116,6 +116,8 @@ SCHEMA: dict[str, dict[str, Spec]] = {
         "target_spl_db": Spec("float", lo=0.0, hi=200.0, help="smallest sound level to resolve [dB re 20 uPa]"),
         "solve_for": Spec("str", choices=("z_d", "focal_length", "f_number"),
                           help="quantity to solve for in inverse design"),
+        "max_blur_mm": Spec("float", positive=True, scale=1e-3, target="max_blur_m",
+                            help="largest acceptable object-plane blur in inverse design [mm]"),
     },
     "images": {
         "reference": Spec("path", help="reference image (no flow)"),
@@ -211,6 +213,7 @@ class PlanConfig:
     target_dt_k: float | None = None
     target_spl_db: float | None = None
     solve_for: str | None = None
+    max_blur_m: float | None = None
 
 
 @dataclass(frozen=True)

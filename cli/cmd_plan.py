@@ -35,6 +35,7 @@ OVERRIDES = {
     "target_dt_k": "plan.target_dt_k",
     "target_spl_db": "plan.target_spl_db",
     "solve_for": "plan.solve_for",
+    "max_blur_mm": "plan.max_blur_mm",
 }
 # geometry option -> Rig field; a file distance not named on the command line is
 # dropped in this order (least specific first) until two remain
@@ -271,8 +272,7 @@ def register(app: typer.Typer) -> None:
         blur, background dot size, warnings and safety cautions; or solve for Z_D, f or N (--solve-for)."""
         options = dict(locals())
         exp, rig_kw = build(experiment_file, options)
-        max_blur_m = None if max_blur_mm is None else max_blur_mm * 1e-3
-        rig, result, design, cautions = run_plan(exp, rig_kw, max_blur_m=max_blur_m)
+        rig, result, design, cautions = run_plan(exp, rig_kw, max_blur_m=exp.plan.max_blur_m)
         if chart is not None:
             write_chart(chart, rig, result)
         if json_out:
