@@ -212,3 +212,16 @@ def test_unflagged_nan_and_reference_without_valid_vectors():
     mask[0] = True
     with pytest.raises(InputError, match="reference region contains no valid vectors"):
         integrate_gradient(g, g, spacing_m=1.0, mask=mask, reference_region="top")
+
+
+def test_dirichlet_part_and_reference_part_each_get_their_level():
+    # analytic solution; left part fixed by its Dirichlet edge, right part (cut off) by the region
+    h, x, phi, gy, gx = off_centre(64)
+    mask = np.zeros(phi.shape, bool)
+    mask[:, 40:42] = True
+    region = np.zeros(phi.shape, bool)
+    region[:, -1] = True
+    out = integrate_gradient(gy, gx, spacing_m=h, mask=mask, dirichlet=edge_values(x, ("left",)),
+                             reference_region=region, reference_value=float(phi[:, -1].mean()))
+    assert np.abs(out[:, :40] - phi[:, :40]).max() < 5e-3
+    assert np.abs(out[:, 42:] - phi[:, 42:]).max() < 5e-3

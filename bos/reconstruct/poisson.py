@@ -528,38 +528,41 @@ def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, met
 
 
 def _set_level(pb: _Problem, phi, reference_region, reference_value):
+    """Fix the free constant of every connected part of the domain (vectorised over parts).
+
+    Parts touching a Dirichlet edge keep their level; others are shifted so the
+    reference region's mean is ``reference_value`` (or to zero mean without a
+    region); parts with neither come back NaN when a region was given.
+    """
+    region = _region(reference_region, pb.shape)
     if pb.rectangle and not pb.dirichlet:  # one component, free constant (fast path)
-        region = _region(reference_region, pb.shape)
         phi += (reference_value - phi[region].mean()) if region is not None else -phi.mean()
         return phi
-    phi = np.where(pb.valid, phi, np.nan)
     labels, count = ndimage.label(pb.valid)
-    region = _region(reference_region, pb.shape)
     anchored = np.zeros(count + 1, bool)
     for edge in pb.dirichlet:
         anchored[np.unique(labels[_edge_slice(edge)])] = True
     anchored[0] = False
+    vals = np.where(pb.valid, phi, 0.0).ravel()
     if region is None:
-        for lab in range(1, count + 1):
-            if not anchored[lab]:
-                part = labels == lab
-                phi[part] -= phi[part].mean()
-        return phi
-    ref = region & pb.valid
-    if not ref.any():
-        raise InputError("reference region contains no valid vectors")
-    if pb.dirichlet:
-        # level already fixed by the edge values; the region is not used
-        keep = anchored[labels]
+        sel = labels.ravel()
+        target = 0.0
     else:
-        # the whole domain shares one constant only if connected: shift each part touching the region
-        keep = np.zeros(pb.shape, bool)
-        for lab in np.unique(labels[ref]):
-            part = labels == lab
-            phi[part] += reference_value - phi[part & ref].mean()
-            keep |= part
-    phi[~keep] = np.nan
-    return phi
+        ref = region & pb.valid
+        if not ref.any():
+            raise InputError("reference region contains no valid vectors")
+        sel = np.where(ref, labels, 0).ravel()
+        target = reference_value
+    sums = np.bincount(sel, weights=vals, minlength=count + 1)
+    counts = np.bincount(sel, minlength=count + 1)
+    free = (counts > 0) & ~anchored
+    free[0] = False
+    shift = np.zeros(count + 1)
+    shift[free] = target - sums[free] / counts[free]
+    keep = anchored | free
+    if region is None:
+        keep[1:] = True
+    return np.where(pb.valid & keep[labels], phi + shift[labels], np.nan)
 
 
 def _edge_slice(edge):
