@@ -396,7 +396,7 @@ def prepare_multigrid(pb: _Problem, *, rtol: float = 1e-9):
 
 
 @_register("pcg")
-def prepare_pcg(pb: _Problem, *, rtol: float = 1e-9, maxiter: int = 300):
+def prepare_pcg(pb: _Problem, *, rtol: float = 1e-9, maxiter: int = 200):
     """Matrix-free conjugate gradients preconditioned by the rectangle DCT solver.
 
     The operator is applied on the full grid from the face weights (masked
