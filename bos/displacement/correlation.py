@@ -60,6 +60,35 @@ def _correlate_stack(a, b, *, workers):
     return ty, tx, peak, ly, lx
 
 
+def _direct_stack(a, b, *, workers):
+    """Correlation peak near zero lag from direct sums (converged predictor).
+
+    Evaluates ``c(t) = sum a(x) b(x + t)`` at t = 0 and +-1 px along each
+    axis only (5 sums instead of two FFTs per window; measured 3x cheaper
+    than the batched FFT for 16 px windows).  For the fit along an axis the
+    zero-lag sum is taken over the same (W-1)-line support as the +-1 sums
+    (mean of the two possible supports), so no gain error enters the
+    three-point Gaussian fit.  Windows whose peak is not at zero lag are
+    redone with the FFT.
+    """
+    ein = partial(np.einsum, "kij,kij->k")
+    c0 = ein(a, b)
+    cyp, cym = ein(a[:, :-1], b[:, 1:]), ein(a[:, 1:], b[:, :-1])
+    cxp, cxm = ein(a[:, :, :-1], b[:, :, 1:]), ein(a[:, :, 1:], b[:, :, :-1])
+    c0y = c0 - 0.5 * (ein(a[:, :1], b[:, :1]) + ein(a[:, -1:], b[:, -1:]))
+    c0x = c0 - 0.5 * (ein(a[:, :, :1], b[:, :, :1]) + ein(a[:, :, -1:], b[:, :, -1:]))
+    ty = gauss3(cym, c0y, cyp)
+    tx = gauss3(cxm, c0x, cxp)
+    energy = np.sqrt(ein(a, a) * ein(b, b))
+    with np.errstate(all="ignore"):
+        peak = np.where(energy > 0, c0 / energy, 0.0)
+    redo = ~((c0y > np.maximum(cym, cyp)) & (c0x > np.maximum(cxm, cxp)))
+    if redo.any():
+        fy, fx, fp, _, _ = _correlate_stack(a[redo], b[redo], workers=workers)
+        ty[redo], tx[redo], peak[redo] = fy, fx, fp
+    return ty, tx, peak
+
+
 def _zero_mean(stack, weight):
     """Subtract each window's mean (over unmasked pixels) and zero masked pixels."""
     if weight is None:
@@ -72,7 +101,8 @@ def _zero_mean(stack, weight):
 
 
 def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window, step, order,
-                      mask_fraction, workers, block_elems, statistics, symmetric=True):
+                      mask_fraction, workers, block_elems, statistics, symmetric=True, direct=False,
+                      shift_bias=None):
     """One interrogation pass over the whole image, processed in row blocks.
 
     ``predictor`` is None or ``(rows, cols, pdy, pdx)`` of the previous pass.
@@ -110,6 +140,9 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             pcol = np.arange(c0, c1, dtype=np.float64)
             dyp = _deform.grid_to_points(pr, pc, pdy, prow, pcol)
             dxp = _deform.grid_to_points(pr, pc, pdx, prow, pcol)
+            if shift_bias is not None:  # realise the predictor exactly (see deformation_bias)
+                dyp += shift_bias(dyp)
+                dxp += shift_bias(dxp)
             a, b = _deform.deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp,
                                        order=order, workers=workers, symmetric=symmetric, ref=ref)
             del dyp, dxp
@@ -128,7 +161,10 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             masked[sl] = (frac > mask_fraction).reshape(nbr, nbc)
         A = _zero_mean(A, weight)
         B = _zero_mean(B, weight)
-        ty, tx, pk, ly, lx = _correlate_stack(A, B, workers=workers)
+        if direct and deform:
+            ty, tx, pk = _direct_stack(A, B, workers=workers)
+        else:
+            ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
         ry[sl] = ty.reshape(nbr, nbc)
         rx[sl] = tx.reshape(nbr, nbc)
         peak[sl] = pk.reshape(nbr, nbc)
@@ -141,7 +177,7 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     return grid_r, grid_c, dy, dx, peak, masked, sy, sx
 
 
-def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetric=True):
+def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetric=True, direct=True):
     """Measure the bias that image deformation itself adds, on this image's texture.
 
     B-spline interpolation shifts each spatial frequency by a slightly wrong
@@ -156,8 +192,9 @@ def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetri
     Returns
     -------
     callable
-        ``bias(d)`` [px] for displacement component(s) ``d`` [px]; the
-        corrected estimate is ``d - bias(d)``.
+        ``bias(d)`` [px] for displacement component(s) ``d`` [px]: deforming
+        by ``s`` moves the images relative to each other by ``s - bias(s)``,
+        so the estimators deform by ``p + bias(p)`` to realise a predictor p.
     """
     n = int(min(size, *image.shape) // 2 * 2)
     r0 = (image.shape[0] - n) // 2
@@ -179,16 +216,22 @@ def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetri
                                    symmetric=symmetric, ref=crop.astype(np.float32))
         A = sliding_window_view(a, (window, window))[:: window // 2, :: window // 2].reshape(-1, window, window)
         B = sliding_window_view(b, (window, window))[:: window // 2, :: window // 2].reshape(-1, window, window)
-        ty, tx, _, _, _ = _correlate_stack(_zero_mean(A.astype(np.float32), None),
-                                          _zero_mean(B.astype(np.float32), None), workers=workers)
+        A = _zero_mean(A.astype(np.float32), None)
+        B = _zero_mean(B.astype(np.float32), None)
+        # the same peak estimator as the final pass
+        ty, tx = (_direct_stack(A, B, workers=workers) if direct else _correlate_stack(A, B, workers=workers))[:2]
         res.append(0.5 * (np.median(ty) + np.median(tx)))  # same interpolator on both axes
     # odd, period-1 function of g that vanishes at g = 0 and 1/2
     basis = np.sin(2 * np.pi * np.outer(g_samples, np.arange(1, 4)))
     coef, *_ = np.linalg.lstsq(basis, np.asarray(res), rcond=None)
 
+    table_g = np.linspace(0.0, 1.0, 1025)
+    table = sum(c * np.sin(2 * np.pi * (k + 1) * table_g) for k, c in enumerate(coef))
+
     def bias(d):
-        g = np.mod(np.asarray(d, dtype=float) * scale, 1.0)
-        return sum(c * np.sin(2 * np.pi * (k + 1) * g) for k, c in enumerate(coef))
+        d = np.asarray(d)
+        g = np.mod(d * scale, 1.0)
+        return np.interp(g, table_g, table).astype(d.dtype if d.dtype.kind == "f" else float)
 
     bias.coefficients = coef
     return bias
@@ -309,7 +352,8 @@ def _pyramid_factor(window, last_window, max_factor, min_level_window=16):
 
 
 def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, epsilon, threshold,
-               mask_fraction, initial, workers, block_elems, max_binning, correct_bias, smooth, symmetric):
+               mask_fraction, initial, workers, block_elems, max_binning, correct_bias, smooth, symmetric,
+               direct):
     """Run the pass schedule; return the last pass and its validation."""
     schedule = _pass_schedule(windows, final_iterations)
     levels = {}
@@ -318,6 +362,10 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         iy, ix = (float(v) for v in initial)
         predictor = (np.array([0.0, ref.shape[0] - 1.0]), np.array([0.0, ref.shape[1] - 1.0]),
                      np.full((2, 2), iy), np.full((2, 2), ix))
+    bias = None
+    if correct_bias and order > 1:
+        bias = deformation_bias(ref, window=schedule[-1], order=order, workers=workers, symmetric=symmetric,
+                                direct=direct)
     for k, window in enumerate(schedule):
         last = k == len(schedule) - 1
         f = 1 if window == schedule[-1] else _pyramid_factor(window, schedule[-1], max_binning)
@@ -330,6 +378,8 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
             lev.ref, lev.meas, *lev.coefficients(order, symmetric), lev.mask, lev.to_level(predictor),
             window=lw, step=step, order=order, mask_fraction=mask_fraction, workers=workers,
             block_elems=block_elems, statistics=last, symmetric=symmetric,
+            direct=direct and f == 1 and window == schedule[-1] and predictor is not None,
+            shift_bias=bias if f == 1 else None,
         )
         gr, gc, dy, dx = lev.to_full(gr, gc, dy, dx)
         bad = ~np.isfinite(dy) | ~np.isfinite(dx) | (peak <= 0)
@@ -339,10 +389,6 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         if last:
             if symmetric:
                 dy, dx = midpoint_to_reference(gr, gc, dy, dx, bad | masked)
-            if correct_bias and order > 1:
-                bias = deformation_bias(ref, window=lw, order=order, workers=workers, symmetric=symmetric)
-                dy = dy - bias(dy)
-                dx = dx - bias(dx)
             return gr, gc, dy, dx, peak, masked, bad & ~masked, sy, sx, schedule
         # predictor for the next pass: outliers and masked vectors replaced by neighbours, then
         # low-pass filtered over one window (3 x 3 vectors at 50 % overlap): without it the
@@ -356,7 +402,7 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
 def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overlap=0.5,
               final_iterations=2, order=3, epsilon=0.1, threshold=2.0, mask_fraction=0.5,
               initial=None, max_binning=4, correct_bias=True, smooth=3, deformation="symmetric",
-              workers=None, block_elems=1 << 22) -> DisplacementField:
+              direct=True, workers=None, block_elems=1 << 22) -> DisplacementField:
     """Multi-pass window-deformation cross-correlation of an image pair.
 
     Windows are interrogated from large to small; before every pass after
@@ -419,8 +465,9 @@ def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overla
     gr, gc, dy, dx, peak, masked, invalid, sy, sx, schedule = _multipass(
         ref, meas, m, windows=windows, overlap=overlap, final_iterations=final_iterations,
         order=order, epsilon=epsilon, threshold=threshold, mask_fraction=mask_fraction,
-        initial=initial, workers=workers, block_elems=int(block_elems), max_binning=int(max_binning), correct_bias=bool(correct_bias), smooth=int(smooth),
-        symmetric=deformation == "symmetric",
+        initial=initial, workers=workers, block_elems=int(block_elems), max_binning=int(max_binning),
+        correct_bias=bool(correct_bias), smooth=int(smooth),
+        symmetric=deformation == "symmetric", direct=bool(direct),
     )
     gone = masked | invalid
     params = dict(windows=windows, overlap=overlap, final_iterations=final_iterations, order=order,
