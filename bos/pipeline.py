@@ -343,7 +343,10 @@ def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None
     r = exp.reconstruction
     kind = r.kind
     slopes = rec.ray_slopes(disp.rows, disp.cols, rig=rig, shape=image_shape) if kind == "planar" else None
-    eps_y, eps_x = rec.deflection_from_displacement(disp.dy, disp.dx, rig=rig, ray_slopes=slopes)
+    # rows_px/cols_px move each vector from the feature's reference position to
+    # the pixel of its camera ray (removes a d.grad(d)/2 bias; see deflection.py)
+    eps_y, eps_x = rec.deflection_from_displacement(disp.dy, disp.dx, rig=rig, ray_slopes=slopes,
+                                                    rows_px=disp.rows, cols_px=disp.cols)
     y_m, x_m = rec.object_coordinates(disp.rows, disp.cols, rig=rig, shape=image_shape)
     if kind == "none":
         return eps_y, eps_x, y_m, x_m, None
