@@ -401,14 +401,19 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
 
 def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overlap=0.5,
               final_iterations=2, order=3, epsilon=0.1, threshold=2.0, mask_fraction=0.5,
-              initial=None, max_binning=4, correct_bias=True, smooth=3, deformation="symmetric",
+              initial=None, max_binning=4, correct_bias=True, smooth=3, deformation="measurement",
               direct=True, workers=None, block_elems=1 << 22) -> DisplacementField:
     """Multi-pass window-deformation cross-correlation of an image pair.
 
     Windows are interrogated from large to small; before every pass after
-    the first, both images are deformed symmetrically by the current
-    predictor (the reference sampled at ``p - d/2``, the measurement at
-    ``p + d/2``; cubic B-spline interpolation).  Each pass correlates all
+    the first, the images are deformed by the current predictor (cubic
+    B-spline interpolation): by default only the measurement, sampled at
+    ``p + d`` (``deformation="measurement"``), or symmetrically, the
+    reference at ``p - d/2`` and the measurement at ``p + d/2``
+    (``"symmetric"``, vectors re-referenced from the pair mid-point to
+    reference positions).  Both give the same accuracy on smooth fields;
+    the one-sided form interpolates one image instead of two (measured
+    1.3-1.8x faster on 4-24 MP, docs/displacement.md).  Each pass correlates all
     windows of a row block at once with batched real FFTs (zero-mean windows,
     normalised), locates the peak with a three-point Gaussian fit, and
     replaces outliers found by the normalised median test before the next
@@ -433,6 +438,18 @@ def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overla
         B-spline order of the image deformation.
     epsilon, threshold : float
         Normalised median test parameters [px, -] (Westerweel & Scarano 2005).
+    correct_bias : bool
+        Cancel the interpolation bias of the deformation, measured on this
+        image's texture by :func:`deformation_bias`.
+    smooth : int
+        Box size (vectors) of the predictor low-pass between passes.
+    deformation : {"measurement", "symmetric"}
+        One-sided or symmetric (central) image deformation.
+    direct : bool
+        In converged final passes, evaluate the correlation at lags 0 and
+        +-1 px by direct sums instead of FFTs (FFT fallback per window).
+    max_binning : int
+        Largest block-mean binning factor of the coarse passes.
     mask_fraction : float
         Masked-pixel fraction above which a window is masked.
     initial : (float, float), optional

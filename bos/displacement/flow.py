@@ -12,6 +12,7 @@ from . import _deform
 from ._inputs import check_pair
 from .correlation import correlate, deformation_bias
 from .field import DisplacementField
+from .validation import replace_invalid
 
 # Conditioning limit: pixels whose local structure tensor has a smaller
 # eigenvalue below this fraction of the image median are flagged invalid
@@ -122,9 +123,10 @@ def optical_flow(reference, measurement, *, mask=None, sigma=4.0, iterations=2, 
     if sigma <= 0 or int(iterations) < 1:
         raise InputError(f"sigma must be > 0 and iterations >= 1, got {sigma} and {iterations}")
     workers = _deform.resolve_workers(workers)
+    # symmetric seed, consistent with the symmetric Lucas-Kanade warps below
     seed = correlate(ref, meas, mask=m, windows=seed_windows, final_iterations=1, order=order,
-                     epsilon=epsilon, threshold=threshold, correct_bias=False, workers=workers)
-    from .validation import replace_invalid
+                     deformation="symmetric", epsilon=epsilon, threshold=threshold, correct_bias=False,
+                     workers=workers)
 
     fill = ~seed.valid
     if fill.all():

@@ -41,21 +41,20 @@ def correlation_statistics(a: np.ndarray, b: np.ndarray):
     Sciacchitano, A. (2019). Uncertainty quantification in particle image
     velocimetry. Meas. Sci. Technol. 30, 092001.
     """
-    c0 = np.einsum("kij,kij->k", a, b, dtype=np.float64)
+    c0 = np.einsum("kij,kij->k", a, b).astype(np.float64)
     out = []
     for axis in (1, 2):
         lo = [slice(None)] * 3
         hi = [slice(None)] * 3
         lo[axis] = slice(None, -1)
         hi[axis] = slice(1, None)
-        a_lo, a_hi, b_lo, b_hi = a[tuple(lo)], a[tuple(hi)], b[tuple(lo)], b[tuple(hi)]
-        fwd = a_lo * b_hi  # terms of C(+1) = sum a(x) b(x+1)
-        bwd = a_hi * b_lo  # terms of C(-1)
-        cp = fwd.sum(axis=(1, 2), dtype=np.float64)
-        cm = bwd.sum(axis=(1, 2), dtype=np.float64)
-        s = fwd - bwd
+        fwd = a[tuple(lo)] * b[tuple(hi)]  # terms of C(+1) = sum a(x) b(x+1)
+        s = a[tuple(hi)] * b[tuple(lo)]  # terms of C(-1)
+        cp = fwd.sum(axis=(1, 2)).astype(np.float64)
+        cm = s.sum(axis=(1, 2)).astype(np.float64)
+        np.subtract(fwd, s, out=s)  # per-pixel terms of C(+1) - C(-1)
         npix = s.shape[1] * s.shape[2]
-        var = (np.einsum("kij,kij->k", s, s, dtype=np.float64) - s.sum(axis=(1, 2), dtype=np.float64) ** 2 / npix)
+        var = np.einsum("kij,kij->k", s, s).astype(np.float64) - (cp - cm) ** 2 / npix
         sd = np.sqrt(np.maximum(var, 0.0))
         x_hi = gauss3(cm - sd / 2, c0, cp + sd / 2)
         x_lo = gauss3(cm + sd / 2, c0, cp - sd / 2)
