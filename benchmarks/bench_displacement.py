@@ -82,7 +82,7 @@ def run_method(method, ref, meas):
 
         opts = {"ours-correlation": dict(method="correlation"),
                 "ours-correlation-fast": dict(method="correlation", final_iterations=1),
-                "ours-correlation-onesided": dict(method="correlation", deformation="measurement"),
+                "ours-correlation-symmetric": dict(method="correlation", deformation="symmetric"),
                 "ours-flow": dict(method="flow")}[method]
         f = estimate(ref, meas, **opts)
         rr, cc = np.meshgrid(f.rows, f.cols, indexing="ij")
@@ -167,7 +167,7 @@ def main():
     from bos.synthetic import render_pair
 
     shape = (4000, 6000) if args.big else (args.size, args.size)
-    methods = ["ours-correlation", "ours-correlation-fast", "ours-correlation-onesided", "openpiv"]
+    methods = ["ours-correlation", "ours-correlation-fast", "ours-correlation-symmetric", "openpiv"]
     if not args.big:
         methods += ["ours-flow", "tvl1", "ilk"]
     methods = [m for m in methods if m not in args.skip and m.replace("ours-", "") not in args.skip]
@@ -201,7 +201,7 @@ def main():
 
     print("\nRATIOS (reference time / ours; rms ours / reference, < 1 is better)")
     for ours, ref in (("ours-correlation", "openpiv"), ("ours-correlation-fast", "openpiv"),
-                      ("ours-correlation-onesided", "openpiv"),
+                      ("ours-correlation-symmetric", "openpiv"),
                       ("ours-flow", "tvl1"), ("ours-flow", "ilk")):
         if ours in methods and ref in methods:
             print(f"  {ours} vs {ref}: {ratio(ours, ref)}")
