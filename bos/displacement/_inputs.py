@@ -70,7 +70,7 @@ def check_texture(image: np.ndarray, name: str, mask: np.ndarray | None = None) 
     # statistics from pairs of adjacent rows spread over the whole image
     # (~256 k pixels; the full image costs 0.07 s per 0.25 MP)
     ny, nx = image.shape
-    step = max(1, int(ny * nx / 2.6e5))
+    step = max(1, int(ny * nx / 1.3e5))
     idx = np.arange(0, ny - 1, step)
     img, below = image[idx], image[idx + 1]
     keep = keep_below = None
