@@ -225,6 +225,41 @@ def test_camera_motion_removal_recovers_global_shift():
     assert np.allclose(g.camera_shift, shift, atol=0.01)
 
 
+@pytest.mark.parametrize("shift", [(25.0, -6.0), (-4.0, 17.3)])
+def test_large_camera_shift_removed_before_the_local_estimate(shift):
+    # Source: exact analytic rendering (bos.synthetic) of a hot-column field
+    # (analytic Gaussian-column deflection, references.md sec. 5 [C]) seen
+    # through a camera shifted by far more than a quarter of the first window
+    # (64 px): only the coarse pre-estimate of the shift lets the windows
+    # follow.  The total shift must come back within 0.01 px (issue 3) and the
+    # local field must match the rendering.
+    from bos.optics import Rig
+    from bos.synthetic import displacement_from_field, gaussian_column_deflection
+
+    n = 384
+    rig = Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_a_m=1.0, z_d_m=0.5)
+    radius = n * rig.object_pixel_m / 10
+    local = displacement_from_field(
+        lambda y, x: gaussian_column_deflection(y, x, amplitude=-2e-4, radius_m=radius), rig=rig, shape=(n, n))
+    p = render_pair(shape=(n, n), displacement=local, camera_shift=shift, seed=13)
+    f = estimate(p.reference, p.measurement, camera_motion="border", border_px=64)
+    assert np.allclose(f.params["camera_coarse_shift"], shift, atol=2.0)
+    assert abs(f.camera_shift[0] - shift[0]) < 0.01
+    assert abs(f.camera_shift[1] - shift[1]) < 0.01
+    # renderer: x = c + d(x) + s, so the local field at reference position p is
+    # d(p + s + d_local(p)) (fixed point)
+    ty, tx = reference_truth(lambda r, c: local(r + shift[0], c + shift[1]), f.rows, f.cols)
+    assert np.max(np.abs(tx)) > 0.5  # a real local field
+    # judged where the 16 px window, moved by the shift, still sees the measurement
+    # (beyond that the image holds no data for it)
+    rr, cc = np.meshgrid(f.rows, f.cols, indexing="ij")
+    seen = ((rr + shift[0] >= 8) & (rr + shift[0] <= n - 9) & (cc + shift[1] >= 8) & (cc + shift[1] <= n - 9))
+    ok = f.valid & seen
+    err = np.sqrt(np.mean(((f.dy - ty)[ok] ** 2 + (f.dx - tx)[ok] ** 2) / 2))
+    assert err < 0.02
+    assert f.invalid[seen].mean() < 0.01
+
+
 # --------------------------------------------------------------------- masks and validation
 def test_mask_and_invalid_are_separate():
     # Source: Fourier shift theorem pair; a masked block gives masked vectors

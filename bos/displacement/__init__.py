@@ -14,7 +14,7 @@ from ..errors import InputError
 from .correlation import correlate
 from .field import DisplacementField
 from .flow import optical_flow
-from .motion import camera_region, fit_camera_motion, remove_camera_motion
+from .motion import camera_region, coarse_camera_shift, fit_camera_motion, remove_camera_motion
 from .validation import normalized_median_test, replace_invalid
 
 METHODS = {
@@ -31,6 +31,7 @@ __all__ = [
     "normalized_median_test",
     "replace_invalid",
     "camera_region",
+    "coarse_camera_shift",
     "fit_camera_motion",
     "remove_camera_motion",
 ]
@@ -53,7 +54,13 @@ def estimate(reference, measurement, *, method: str = "correlation", mask=None, 
     camera_motion : None, "border" or ndarray of bool
         Remove a global camera motion estimated outside the flow: ``"border"``
         uses a band of ``border_px`` around the image edge, an array marks the
-        flow-free region (True = no flow there).  None: no removal.
+        flow-free region (True = no flow there).  None: no removal.  The
+        motion is estimated twice: before the local estimate, an integer
+        shift from a masked cross-correlation of that region
+        (:func:`coarse_camera_shift`) seeds the estimator as its first
+        predictor (unless ``initial`` is given), so shifts far beyond a
+        window are followed; after it, a shift or affine motion is fitted to
+        the vectors in the region and subtracted.
     camera_model : {"shift", "affine"}
         Model of the camera motion fitted in that region.
     border_px : int, optional
@@ -69,9 +76,17 @@ def estimate(reference, measurement, *, method: str = "correlation", mask=None, 
     """
     if method not in METHODS:
         raise InputError(f"unknown displacement method {method!r}; choose one of {', '.join(sorted(METHODS))}")
-    result = METHODS[method](reference, measurement, mask=mask, **options)
     if camera_motion is None:
-        return result
+        return METHODS[method](reference, measurement, mask=mask, **options)
     region = camera_region(np.shape(reference), region=camera_motion, border_px=border_px)
+    coarse = None
+    if options.get("initial") is None:
+        seen = region if mask is None or np.shape(mask) != region.shape else region & ~np.asarray(mask, dtype=bool)
+        coarse = coarse_camera_shift(reference, measurement, seen)
+        if coarse != (0.0, 0.0):
+            options["initial"] = coarse
+    result = METHODS[method](reference, measurement, mask=mask, **options)
     motion = fit_camera_motion(result, region, model=camera_model)
-    return remove_camera_motion(result, motion)
+    out = remove_camera_motion(result, motion)
+    out.params["camera_coarse_shift"] = coarse
+    return out

@@ -71,7 +71,7 @@ def _lk_strip(coef_ref, coef_meas, weight, dyp, dxp, r0, r1, *, sigma, iteration
 
 def optical_flow(reference, measurement, *, mask=None, sigma=4.0, iterations=2, order=3,
                  seed_windows=(64, 32, 16), correct_bias=True, strip_rows=512, workers=None,
-                 epsilon=0.1, threshold=2.0) -> DisplacementField:
+                 epsilon=0.1, threshold=2.0, initial=None) -> DisplacementField:
     """Dense (per-pixel) displacement by iterative symmetric Lucas-Kanade.
 
     A correlation estimate (:func:`correlate` with ``seed_windows``) seeds a
@@ -104,6 +104,8 @@ def optical_flow(reference, measurement, *, mask=None, sigma=4.0, iterations=2, 
         Threads (default: all cores).
     epsilon, threshold : float
         Normalised median test of the seed.
+    initial : (float, float), optional
+        Uniform first predictor (dy, dx) [px] of the seeding correlation.
 
     Returns
     -------
@@ -126,7 +128,7 @@ def optical_flow(reference, measurement, *, mask=None, sigma=4.0, iterations=2, 
     # symmetric seed, consistent with the symmetric Lucas-Kanade warps below
     seed = correlate(ref, meas, mask=m, windows=seed_windows, final_iterations=1, order=order,
                      deformation="symmetric", epsilon=epsilon, threshold=threshold, correct_bias=False,
-                     workers=workers)
+                     workers=workers, initial=initial)
 
     fill = ~seed.valid
     if fill.all():

@@ -64,6 +64,58 @@ def camera_region(image_shape, *, region="border", border_px: int | None = None)
     return out
 
 
+def _bin(image, f):
+    """Block mean over f x f pixels (cropped to a multiple of f)."""
+    ny, nx = (image.shape[0] // f) * f, (image.shape[1] // f) * f
+    return image[:ny, :nx].reshape(ny // f, f, nx // f, f).mean(axis=(1, 3))
+
+
+def coarse_camera_shift(reference, measurement, region: np.ndarray, *, min_side: int = 256):
+    """Integer-pixel global shift (dy, dx) of the background seen in ``region``.
+
+    Masked normalised cross-correlation of the two images restricted to the
+    flow-free region (scikit-image ``phase_cross_correlation`` with masks,
+    Padfield 2012), on block-mean binned images whose smaller side stays
+    >= ``min_side`` px (bin factor a power of two, at most 8), so it costs
+    ~0.2 s whatever the image size.  Accuracy is the bin factor (a few px at
+    most), enough to seed the window-deformation passes, which then refine it.
+
+    Parameters
+    ----------
+    reference, measurement : ndarray, 2-D
+        Grey images of equal shape.
+    region : ndarray of bool
+        True where the background is seen without flow.
+    min_side : int
+        Smallest side of the binned images [px].
+
+    Returns
+    -------
+    (float, float)
+        Shift (dy, dx) [px]: a feature at p in the reference appears at
+        p + shift in the measurement.
+
+    References
+    ----------
+    Padfield, D. (2012). Masked object registration in the Fourier domain.
+    IEEE Trans. Image Process. 21, 2706-2718.
+    """
+    from skimage.registration import phase_cross_correlation
+
+    f = 1
+    while 2 * f <= 8 and min(region.shape) // (2 * f) >= min_side:
+        f *= 2
+    ref = _bin(np.asarray(reference, dtype=np.float32), f)
+    meas = _bin(np.asarray(measurement, dtype=np.float32), f)
+    reg = _bin(region.astype(np.float32), f) > 0.999
+    if reg.sum() < 64:
+        raise InputError("camera-motion region is too small to estimate a global shift (< 64 binned pixels)")
+    with np.errstate(all="ignore"):
+        shift, *_ = phase_cross_correlation(ref, meas, reference_mask=reg, moving_mask=reg)
+    # phase_cross_correlation returns the shift that registers the measurement onto the reference
+    return (-float(shift[0]) * f, -float(shift[1]) * f)
+
+
 def fit_camera_motion(field: DisplacementField, region: np.ndarray, *, model: str = "shift") -> CameraMotion:
     """Fit a global shift or affine motion to the valid vectors inside ``region``.
 
