@@ -361,12 +361,13 @@ def _sparse_system(pb: _Problem):
     # a valid cell whose faces all have zero weight (e.g. w_y > 0 = w_x next to cells with
     # w_y = 0) has an empty row: pin it (phi = 0 there, as CG leaves it) so that A is regular
     vals[vals[:, 2] == 0.0, 2] = 1.0
-    keep = vals != 0.0
-    indptr = np.zeros(n + 1, dtype=itype)
-    np.cumsum(keep.sum(axis=1), out=indptr[1:])
-    diag_pos = indptr[:-1] + keep[:, :2].sum(axis=1)
-    A = sp.csr_matrix((vals[keep], cols[keep], indptr), shape=(n, n))
+    before_diag = (vals[:, 0] != 0).astype(itype) + (vals[:, 1] != 0)
+    # 5 slots per row, absent neighbours as explicit zeros that scipy removes in place (C++;
+    # vals/cols are overwritten): 0.5-0.9 s -> ~0.1 s against boolean compression at 2048^2
+    A = sp.csr_matrix((vals.ravel(), cols.ravel(), np.arange(0, 5 * n + 1, 5, dtype=itype)), shape=(n, n))
+    A.eliminate_zeros()
     A.has_sorted_indices = True
+    diag_pos = A.indptr[:-1] + before_diag
     _pin_free_parts(pb, A, diag_pos)
     return A, rhs[valid], index
 
@@ -505,7 +506,7 @@ def _v_cycle(ml):
 
 
 @_register("multigrid")
-def prepare_multigrid(pb: _Problem, *, rtol: float = 1e-9, maxiter: int = 1000):
+def prepare_multigrid(pb: _Problem, *, rtol: float = 1e-8, maxiter: int = 1000):
     """Sparse normal equations solved by CG with an aggregation multigrid preconditioner.
 
     Robust for strongly varying weights and any mask (the fallback of
