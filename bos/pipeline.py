@@ -14,7 +14,6 @@ from __future__ import annotations
 import contextlib
 import math
 import os
-import sys
 import warnings as warnings_module
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -518,29 +517,6 @@ def cautions(exp: Experiment) -> list[str]:
 # ---------------------------------------------------------------------------
 
 
-@contextlib.contextmanager
-def quiet_native_stdout():
-    """Silence text that compiled extensions print on file descriptor 1.
-
-    pyamg's Ruge-Stuben setup (C++) prints "Inner denominator was zero."
-    straight to stdout, which would break ``--json`` output; Python-level
-    output is unaffected.  Does nothing if descriptor 1 cannot be duplicated.
-    """
-    try:
-        sys.stdout.flush()
-        saved = os.dup(1)
-    except (OSError, ValueError, AttributeError):
-        yield
-        return
-    try:
-        with open(os.devnull, "wb") as null:
-            os.dup2(null.fileno(), 1)
-        yield
-    finally:
-        os.dup2(saved, 1)
-        os.close(saved)
-
-
 def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> RunResult:
     """Run every stage of one experiment and return the result (writes nothing).
 
@@ -572,9 +548,8 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
     disp = measure_displacement(inputs, exp)
     _tick(progress, "displacement", 1.0)
     _tick(progress, "reconstruction", 0.0)
-    with quiet_native_stdout():
-        eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
-                                                   rig=rig, medium=medium)
+    eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
+                                               rig=rig, medium=medium)
     _tick(progress, "reconstruction", 1.0)
     warnings = list(inputs.warnings) + exif_notes
     warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]
