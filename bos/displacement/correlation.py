@@ -138,13 +138,7 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     sx = np.full(shape, np.nan)
     masked = np.zeros(shape, dtype=bool)
     c0, c1 = int(cs[0]), int(cs[-1] + window)
-    # Row bands are processed concurrently, one thread each (deformation, FFTs and sums
-    # single-threaded inside a band): numpy's copies, einsum sums and the spline sampling
-    # release the GIL, so the whole pass runs in parallel, not only the sampling and
-    # FFTs.  Measured on a 4 MP pair, 2 cores: the pass time 0.55 -> 0.40 s (see
-    # docs/displacement.md).  block_elems still bounds the memory of all bands in flight.
-    band = max(1, block_elems // (workers * cs.size * window * window))
-    band = min(band, max(1, -(-rs.size // (2 * workers))))
+    band = max(1, block_elems // (cs.size * window * window))
 
     def run(b0):
         sl = slice(b0, b0 + band)
@@ -158,7 +152,7 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
                 dyp += shift_bias(dyp)
                 dxp += shift_bias(dxp)
             a, b = _deform.deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp,
-                                       order=order, workers=1, symmetric=symmetric, ref=ref)
+                                       order=order, workers=workers, symmetric=symmetric, ref=ref)
             del dyp, dxp
         else:
             a, b = ref[r0:r1, c0:c1], meas[r0:r1, c0:c1]
@@ -175,12 +169,12 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
         A = _zero_mean(A, weight)
         B = _zero_mean(B, weight)
         if direct and deform:
-            ty, tx, pk = _direct_stack(A, B, workers=1)
+            ty, tx, pk = _direct_stack(A, B, workers=workers)
             if shift_bias is not None and shift_bias.residual is not None:
                 ty -= shift_bias.residual(ty)
                 tx -= shift_bias.residual(tx)
         else:
-            ty, tx, pk, _, _ = _correlate_stack(A, B, workers=1)
+            ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
         ry[sl] = ty.reshape(nbr, nbc)
         rx[sl] = tx.reshape(nbr, nbc)
         peak[sl] = pk.reshape(nbr, nbc)
@@ -189,12 +183,10 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             sy[sl] = s_y.reshape(nbr, nbc)
             sx[sl] = s_x.reshape(nbr, nbc)
 
-    starts = range(0, rs.size, band)
-    if workers == 1 or len(starts) == 1:
-        for b0 in starts:
-            run(b0)
-    else:
-        list(_deform.pool(workers).map(run, starts))
+    # (processing row bands concurrently in threads, each single-threaded, was tried:
+    # no measurable gain on the shared 2-core machine, 2.3 -> 2.3-2.7 s on a 4 MP pair)
+    for b0 in range(0, rs.size, band):
+        run(b0)
     dy = py + ry
     dx = px + rx
     return grid_r, grid_c, dy, dx, peak, masked, sy, sx
