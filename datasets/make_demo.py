@@ -38,7 +38,6 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import math
 from pathlib import Path
 
 import numpy as np
