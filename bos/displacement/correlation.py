@@ -86,7 +86,7 @@ def _direct_stack(a, b, *, workers):
     if redo.any():
         fy, fx, fp, _, _ = _correlate_stack(a[redo], b[redo], workers=workers)
         ty[redo], tx[redo], peak[redo] = fy, fx, fp
-    return ty, tx, peak
+    return ty, tx, peak, (c0, (cym, cyp), (cxm, cxp))
 
 
 def _own_stack(stack, image):
@@ -169,17 +169,18 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
         A = _zero_mean(A, weight)
         B = _zero_mean(B, weight)
         if direct and deform:
-            ty, tx, pk = _direct_stack(A, B, workers=workers)
+            ty, tx, pk, sums = _direct_stack(A, B, workers=workers)
             if shift_bias is not None and shift_bias.residual is not None:
                 ty -= shift_bias.residual(ty)
                 tx -= shift_bias.residual(tx)
         else:
+            sums = None
             ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
         ry[sl] = ty.reshape(nbr, nbc)
         rx[sl] = tx.reshape(nbr, nbc)
         peak[sl] = pk.reshape(nbr, nbc)
         if statistics:
-            s_y, s_x = correlation_statistics(A, B)
+            s_y, s_x = correlation_statistics(A, B, sums=sums)
             sy[sl] = s_y.reshape(nbr, nbc)
             sx[sl] = s_x.reshape(nbr, nbc)
 
