@@ -258,6 +258,9 @@ def test_large_camera_shift_removed_before_the_local_estimate(shift):
     err = np.sqrt(np.mean(((f.dy - ty)[ok] ** 2 + (f.dx - tx)[ok] ** 2) / 2))
     assert err < 0.02
     assert f.invalid[seen].mean() < 0.01
+    # windows pushed more than a quarter window out of the measurement are rejected
+    gone = (rr + shift[0] < -4) | (rr + shift[0] > n + 3) | (cc + shift[1] < -4) | (cc + shift[1] > n + 3)
+    assert gone.any() and f.invalid[gone].all()
 
 
 # --------------------------------------------------------------------- masks and validation

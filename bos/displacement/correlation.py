@@ -470,6 +470,16 @@ def _predictor_update(old, new, valid):
     return float(np.percentile(np.maximum(np.abs(ny - oy), np.abs(nx - ox))[valid], 99))
 
 
+def _leaves_image(rows, cols, dy, dx, window, shape):
+    """Vectors whose window, moved by (dy, dx), lies more than window / 4 outside the image."""
+    half, tol = (window - 1) / 2.0, window / 4.0
+    with np.errstate(invalid="ignore"):
+        yy = rows[:, None] + dy
+        xx = cols[None, :] + dx
+        return ((yy - half < -tol) | (yy + half > shape[0] - 1 + tol)
+                | (xx - half < -tol) | (xx + half > shape[1] - 1 + tol))
+
+
 def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overlap=0.5,
               final_iterations=2, order=3, epsilon=0.1, threshold=2.0, mask_fraction=0.5,
               initial=None, max_binning=4, correct_bias=True, smooth=3, deformation="measurement",
@@ -562,6 +572,9 @@ def correlate(reference, measurement, *, mask=None, windows=(64, 32, 16), overla
         symmetric=deformation == "symmetric", direct=bool(direct),
         converged=None if converged is None else float(converged),
     )
+    # a window whose features leave the measurement image by more than a quarter of
+    # its width (large camera shifts) correlates against mirror-extended data: invalid
+    invalid |= _leaves_image(gr, gc, dy, dx, schedule[-1], ref.shape) & ~masked
     gone = masked | invalid
     params = dict(windows=windows, overlap=overlap, final_iterations=final_iterations, order=order,
                   deformation=deformation, max_binning=max_binning, smooth=smooth, correct_bias=correct_bias,
