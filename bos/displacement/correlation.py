@@ -109,13 +109,17 @@ def _zero_mean(stack, weight):
 
 def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window, step, order,
                       mask_fraction, workers, block_elems, statistics, symmetric=True, direct=False,
-                      shift_bias=None):
+                      shift_bias=None, redo=None, previous=None):
     """One interrogation pass over the whole image, processed in row blocks.
 
     ``predictor`` is None or ``(rows, cols, pdy, pdx)`` of the previous pass.
     Returns grid rows/cols, the displacement on this grid (predictor +
     correlation residual), the peak height, the masked flags and, when
-    ``statistics``, the correlation-statistics uncertainty.
+    ``statistics``, the correlation-statistics uncertainty.  With ``redo``
+    (bool, grid shape) and ``previous`` (the same outputs of a pass on this
+    grid), only bands of windows holding a ``redo`` window are computed (each
+    over the column span of its ``redo`` windows); the other windows keep
+    ``previous``.
     """
     ny, nx = ref.shape
     rs = window_starts(ny, window, step)
@@ -137,12 +141,14 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     sy = np.full(shape, np.nan)
     sx = np.full(shape, np.nan)
     masked = np.zeros(shape, dtype=bool)
-    c0, c1 = int(cs[0]), int(cs[-1] + window)
     band = max(1, block_elems // (cs.size * window * window))
+    if redo is not None:
+        band = min(band, 8)
 
-    def run(b0):
-        sl = slice(b0, b0 + band)
-        r0, r1 = int(rs[b0]), int(rs[sl][-1] + window)
+    def run(b0, j0, j1):
+        sl = (slice(b0, b0 + band), slice(j0, j1))
+        r0, r1 = int(rs[b0]), int(rs[sl[0]][-1] + window)
+        c0, c1 = int(cs[j0]), int(cs[j1 - 1] + window)
         if deform:
             prow = np.arange(r0, r1, dtype=np.float64)
             pcol = np.arange(c0, c1, dtype=np.float64)
@@ -186,10 +192,22 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
 
     # (processing row bands concurrently in threads, each single-threaded, was tried:
     # no measurable gain on the shared 2-core machine, 2.3 -> 2.3-2.7 s on a 4 MP pair)
+    done = np.zeros(shape, dtype=bool)
     for b0 in range(0, rs.size, band):
-        run(b0)
+        j0, j1 = 0, cs.size
+        if redo is not None:
+            cols = np.flatnonzero(redo[b0:b0 + band].any(axis=0))
+            if cols.size == 0:
+                continue
+            j0, j1 = int(cols[0]), int(cols[-1]) + 1
+        run(b0, j0, j1)
+        done[b0:b0 + band, j0:j1] = True
     dy = py + ry
     dx = px + rx
+    if redo is not None:
+        keep = ~done
+        for new, old in zip((dy, dx, peak, masked, sy, sx), previous):
+            new[keep] = old[keep]
     return grid_r, grid_c, dy, dx, peak, masked, sy, sx
 
 
@@ -422,6 +440,7 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         bias = deformation_bias(ref, window=schedule[-1], order=order, workers=workers, symmetric=symmetric,
                                 direct=direct)
     first_final = schedule.index(schedule[-1])
+    redo = previous = None
     for k, window in enumerate(schedule):
         last = k == len(schedule) - 1
         final = k >= first_final
@@ -436,7 +455,7 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
             window=lw, step=step, order=order, mask_fraction=mask_fraction, workers=workers,
             block_elems=block_elems, statistics=last or (final and converged is not None), symmetric=symmetric,
             direct=direct and final and predictor is not None,
-            shift_bias=bias if f == 1 else None,
+            shift_bias=bias if f == 1 else None, redo=redo, previous=previous,
         )
         gr, gc, dy, dx = lev.to_full(gr, gc, dy, dx)
         bad = ~np.isfinite(dy) | ~np.isfinite(dx) | (peak <= 0)
@@ -452,7 +471,15 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
             new = (gr, gc, _smooth(replace_invalid(dy, bad | masked), smooth),
                    _smooth(replace_invalid(dx, bad | masked), smooth))
             if final and converged is not None:
-                last = _predictor_update(predictor, new, ~(bad | masked)) < converged
+                # converged windows keep this pass's result; the next pass only redoes the
+                # bands of windows (3 x 3 neighbourhood) whose predictor still changes.
+                # Measured (strong benchmark field, A/B runs): 4 MP 1.83 -> 1.67 s, 24 MP
+                # 12.0 -> 9.9 s, rms unchanged (0.0044 px at 24 MP); 37 % of the windows redone at 4 MP.
+                change = _predictor_update(predictor, new)
+                valid = ~(bad | masked)
+                last = not valid.any() or np.percentile(change[valid], 99) < converged
+                redo = ndi.binary_dilation((change >= converged) | bad, np.ones((3, 3), bool)) & ~masked
+                previous = (dy, dx, peak, masked, sy, sx)
             predictor = new
         if last:
             if symmetric:
@@ -460,14 +487,14 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
             return gr, gc, dy, dx, peak, masked, bad & ~masked, sy, sx, schedule[:k + 1]
 
 
-def _predictor_update(old, new, valid):
-    """99th percentile of the predictor change |new - old| [px] over the valid vectors of ``new``."""
+def _predictor_update(old, new):
+    """Predictor change max(|dy_new - dy_old|, |dx_new - dx_old|) [px] on the grid of ``new``."""
     gr, gc, ny, nx = new
-    if old is None or not valid.any():
-        return np.inf
+    if old is None:
+        return np.full(ny.shape, np.inf)
     oy = _deform.grid_to_points(old[0], old[1], old[2], gr, gc)
     ox = _deform.grid_to_points(old[0], old[1], old[3], gr, gc)
-    return float(np.percentile(np.maximum(np.abs(ny - oy), np.abs(nx - ox))[valid], 99))
+    return np.maximum(np.abs(ny - oy), np.abs(nx - ox))
 
 
 def _leaves_image(rows, cols, dy, dx, window, shape):
