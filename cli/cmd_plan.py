@@ -242,7 +242,8 @@ def register(app: typer.Typer) -> None:
     def plan_command(
         experiment_file: Optional[Path] = typer.Argument(None, help="experiment TOML file (options override it)"),
         focal_length_mm: Optional[float] = typer.Option(None, help="lens focal length (mm)"),
-        pixel_um: Optional[float] = typer.Option(None, help="sensor pixel pitch (µm)"),
+        pixel_um: Optional[float] = typer.Option(None, "--pixel-pitch-um", "--pixel-um",
+                                                 help="sensor pixel pitch (µm)"),
         f_number: Optional[float] = typer.Option(None, help="lens f-number N"),
         sensor_px: Optional[str] = typer.Option(None, help="sensor size ROWSxCOLS in pixels, e.g. 4000x6000"),
         wavelength_nm: Optional[float] = typer.Option(None, help="effective wavelength of the light (nm)"),

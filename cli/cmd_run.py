@@ -128,7 +128,7 @@ def register(app: typer.Typer) -> None:
         axis_px: Optional[float] = typer.Option(None, "--axis-px", help="symmetry-axis position (px) (axisymmetric)"),
         width_mm: Optional[float] = typer.Option(None, "--width-mm", help="object width along the line of sight (mm)"),
         focal_length_mm: Optional[float] = typer.Option(None, "--focal-length-mm", help="lens focal length (mm)"),
-        pixel_pitch_um: Optional[float] = typer.Option(None, "--pixel-pitch-um", help="sensor pixel pitch (um)"),
+        pixel_pitch_um: Optional[float] = typer.Option(None, "--pixel-pitch-um", "--pixel-um", help="sensor pixel pitch (um)"),
         f_number: Optional[float] = typer.Option(None, "--f-number", help="lens f-number"),
         camera_to_object_m: Optional[float] = typer.Option(None, "--camera-to-object-m", help="Z_A (m)"),
         object_to_background_m: Optional[float] = typer.Option(None, "--object-to-background-m", help="Z_D (m)"),
