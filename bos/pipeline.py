@@ -22,7 +22,7 @@ from typing import Any, Callable
 import numpy as np
 
 from .config import Experiment
-from .errors import ConfigError, DataFileError
+from .errors import ConfigError, DataFileError, InputError
 
 #: progress(stage, fraction) with fraction in [0, 1]; called at stage boundaries.
 ProgressFn = Callable[[str, float], None]
@@ -261,6 +261,8 @@ def measure_displacement(inputs: Inputs, exp: Experiment):
     """Estimate the background displacement field [px] between the two images."""
     from . import displacement
 
+    if inputs.mask is not None and bool(np.all(inputs.mask)):
+        raise InputError("the mask covers the whole image: there is nothing to measure")
     return displacement.estimate(inputs.reference, inputs.measurement, method=exp.processing.method,
                                  mask=inputs.mask,
                                  camera_motion=camera_motion_region(exp, inputs.reference.shape),
@@ -368,6 +370,10 @@ def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None
         vertical = r.axis == "vertical"
         axis_pos = None
         if r.axis_px is not None:
+            extent = image_shape[1] if vertical else image_shape[0]
+            if not 0 <= r.axis_px <= extent - 1:
+                raise InputError(f"reconstruction.axis_px = {r.axis_px:g} is outside the image "
+                                 f"(0..{extent - 1} px {'columns' if vertical else 'rows'})")
             axis_pos = _grid_index(r.axis_px, disp.cols if vertical else disp.rows)
         dens = rec.axisymmetric_density(eps_y, eps_x, spacing_m=(step_x if vertical else step_y) * pix,
                                         axis=r.axis, axis_position=axis_pos, method=r.abel_method, **common)

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import contextlib
 import math
+import sys
 from pathlib import Path
 from typing import Any, Optional
 
@@ -93,14 +95,24 @@ def run_and_save(exp, *, quiet: bool = False):
     """Run the pipeline with a progress bar (unless ``quiet``) and save; return (result, files)."""
     from bos import pipeline
 
-    pipeline.prepare_output_dir(pipeline.output_paths(exp)["result"].parent)
-    if quiet:
-        result = pipeline.run_experiment(exp)
-    else:
-        progress, callback = make_progress()
-        with progress:
-            result = pipeline.run_experiment(exp, progress=callback)
-    files = pipeline.save_run(result, exp)
+    out_dir = pipeline.output_paths(exp)["result"].parent
+    created = not out_dir.exists()
+    pipeline.prepare_output_dir(out_dir)  # fail fast on an unwritable output before the long work
+    # progress bars only on a terminal: piped stderr keeps exactly the one-line error on failure
+    quiet = quiet or not sys.stderr.isatty()
+    try:
+        if quiet:
+            result = pipeline.run_experiment(exp)
+        else:
+            progress, callback = make_progress()
+            with progress:
+                result = pipeline.run_experiment(exp, progress=callback)
+        files = pipeline.save_run(result, exp)
+    except BaseException:
+        if created:  # leave no empty output directory behind after a failed run
+            with contextlib.suppress(OSError):
+                out_dir.rmdir()
+        raise
     return result, files
 
 

@@ -224,6 +224,20 @@ def test_image_without_texture(png_case):
     _assert_clean_failure(res, png_case.parent, "texture")
 
 
+def test_mask_covering_everything(png_case):
+    import imageio.v3 as iio
+
+    iio.imwrite(png_case.parent / "mask.png", np.full(SHAPE, 255, np.uint8))
+    res = invoke("run", png_case, "--mask", png_case.parent / "mask.png")
+    _assert_clean_failure(res, png_case.parent, "mask covers the whole image")
+    assert not (png_case.parent / "out").exists()  # no empty output directory either
+
+
+def test_axis_outside_the_image(png_case):
+    res = invoke("run", png_case, "--kind", "axisymmetric", "--axis-px", "5000")
+    _assert_clean_failure(res, png_case.parent, "outside the image")
+
+
 def test_missing_image_key(tmp_path):
     f = write_experiment(tmp_path, "ref.png", "meas.png")
     f.write_text(f.read_text().replace('measurement = "meas.png"\n', ""))
