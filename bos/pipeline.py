@@ -87,6 +87,10 @@ class RunResult:
         software version, cautions), JSON-ready.
     inputs : Inputs
         The images and mask that were processed.
+    acoustic : bos.acoustics.AcousticField or None
+        For ``source.kind = "ultrasound"``: acoustic pressure p' = c^2 rho'
+        and the isentropic temperature (which then replaces the isobaric one
+        in the outputs).
     """
 
     displacement: Any
@@ -99,6 +103,7 @@ class RunResult:
     warnings: list[str]
     attrs: dict[str, Any]
     inputs: Inputs
+    acoustic: Any = None
 
 
 def _tick(progress: ProgressFn | None, stage: str, fraction: float) -> None:
@@ -562,6 +567,14 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
     warnings += [str(w) for w in (getattr(dens, "warnings", None) or [])]
     warnings = _unique(warnings)
     summary = summarize(disp, dens, medium=medium, warnings=warnings)
+    acoustic = None
+    if dens is not None and exp.source.kind == "ultrasound":
+        from .acoustics import acoustic_field
+
+        acoustic = acoustic_field(dens.density, medium=medium, sigma_density=dens.sigma_density)
+        summary["peak_acoustic_pressure_pa"] = acoustic.peak_pressure_pa
+        summary["peak_sound_pressure_level_db"] = acoustic.peak_spl_db
+        summary["temperature_model"] = "isentropic (acoustic)"
     attrs = {
         "software": "bos-toolkit",
         "software_version": bos.__version__,
@@ -582,7 +595,7 @@ def run_experiment(exp: Experiment, *, progress: ProgressFn | None = None) -> Ru
         "summary": jsonable(summary),
     }
     return RunResult(displacement=disp, eps_y=eps_y, eps_x=eps_x, density=dens, y_m=y_m, x_m=x_m,
-                     summary=summary, warnings=warnings, attrs=attrs, inputs=inputs)
+                     summary=summary, warnings=warnings, attrs=attrs, inputs=inputs, acoustic=acoustic)
 
 
 # ---------------------------------------------------------------------------
@@ -682,6 +695,13 @@ def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, 
             sig = getattr(dens, attr, None)
             if sig is not None:
                 v[f"{name}_uncertainty"] = _var(sig, units, f"1-sigma uncertainty of {name}")
+    ac = getattr(result, "acoustic", None)
+    if ac is not None:
+        v["acoustic_pressure"] = _var(ac.pressure_pa, "Pa", "acoustic pressure p' = c^2 (rho - rho0)")
+        v["acoustic_pressure_uncertainty"] = _var(ac.sigma_pressure_pa, "Pa", "1-sigma uncertainty of acoustic_pressure")
+        v["temperature"] = _var(ac.temperature_k, "K", "gas temperature (isentropic acoustic fluctuation)",
+                                standard_name="air_temperature" if gas == "air" else None)
+        v["temperature_uncertainty"] = _var(ac.sigma_temperature_k, "K", "1-sigma uncertainty of temperature")
     return coords, v
 
 

@@ -28,6 +28,8 @@ SUMMARY_ROWS = (
     ("max_temperature_k", "max temperature", "K", ".2f"),
     ("peak_temperature_rise_k", "peak temperature rise", "K", ".2f"),
     ("median_temperature_uncertainty_k", "median temperature uncertainty", "K", ".3f"),
+    ("peak_acoustic_pressure_pa", "peak acoustic pressure", "Pa", ".1f"),
+    ("peak_sound_pressure_level_db", "peak sound level (sine)", "dB re 20 µPa", ".1f"),
 )
 
 
