@@ -3,16 +3,18 @@
 Outside sources: the analytic Abel pairs of references.md section 5 [C]
 (quadrature-verified there), PyAbel 0.9.1's Dasch three-point and
 onion-peeling inversions run here on the projections (references.md section 5
-table [C]), and numpy random sampling for the Monte Carlo checks.
+table [C]), scipy quad for the inverse of a profile cut by the window, and numpy random
+sampling for the Monte Carlo checks.
 """
 
 import abel  # PyAbel, test oracle
 import numpy as np
 import pytest
+from scipy import integrate
 
 from bos.errors import InputError
 from bos.reconstruct.abel import (METHODS, abel_invert_deflection, abel_invert_field, find_symmetry_axis,
-                                  inversion_operator)
+                                  inversion_operator, three_point_operator)
 from bos.reconstruct.analytic import ABEL_PAIRS
 
 N, DR = 201, 0.005  # references.md section 5 table: n = 201 samples on [0, 1]
@@ -25,14 +27,21 @@ def max_err(name, method):
     return np.abs(abel_invert_deflection(dF, dr_m=DR, method=method) - f)[INNER].max()
 
 
-@pytest.mark.parametrize("name, table", [("gaussian", 1.39e-4), ("quartic", 2.50e-5)])
-def test_three_point_no_worse_than_pyabel_on_smooth_pairs(name, table):
+# PyAbel's Dasch three-point on the exact projection F vs ours on eps = F' (same 201 samples).
+# table: references.md section 5 table [C] (sqrt(1 - r^2) is not in it; PyAbel measured here: 1.87e-5).
+# ours, measured: Gaussian 4.3e-5, (1-r^2)^2 8.6e-6, 1-r^2 8.2e-6 (2.1e-4 before the edge model),
+# sqrt(1-r^2) 5e-15 (7.1e-4 before; eps is linear with a jump at the last sample, which the edge model
+# represents exactly).  The uniform disk is left out: its eps = -2y/sqrt(1-y^2) is infinite at the edge.
+@pytest.mark.parametrize("name, table", [("gaussian", 1.39e-4), ("quartic", 2.50e-5), ("parabola", 1.25e-5),
+                                         ("ellipse", None)])
+def test_three_point_no_worse_than_pyabel(name, table):
     f, F, dF = ABEL_PAIRS[name](R)
     pyabel = abel.dasch.three_point_transform(F, basis_dir=None, dr=DR)
     err_pyabel = np.abs(pyabel - f)[INNER].max()
-    assert err_pyabel == pytest.approx(table, rel=0.02)  # the table value of references.md section 5
+    if table is not None:
+        assert err_pyabel == pytest.approx(table, rel=0.02)  # the table value of references.md section 5
     ours = abel_invert_deflection(dF, dr_m=DR, method="three_point")
-    assert np.abs(ours - f)[INNER].max() <= err_pyabel
+    assert np.abs(ours - f)[INNER].max() <= 0.7 * err_pyabel
     assert np.abs(ours - pyabel)[INNER].max() <= 2 * err_pyabel  # the two agree on the same data
 
 
@@ -42,12 +51,36 @@ def test_onion_peeling_no_worse_than_pyabel_onion_peeling(name, table):
     assert max_err(name, "onion_peeling") <= table
 
 
-@pytest.mark.parametrize("name", ["parabola", "ellipse"])
-def test_pairs_with_non_smooth_edge(name):
-    # analytic pairs with a kink/jump of eps at the support edge: the derivative form is weaker there
-    # than PyAbel on the (smoother) projection; measured 2.1e-4 / 7.1e-4 for three_point
-    assert max_err(name, "three_point") < 1e-3
-    assert max_err(name, "onion_peeling") < 6e-3
+def test_onion_peeling_on_pairs_with_non_smooth_edge():
+    # eps with a square-root cusp / a jump at the support edge; measured 3.7e-4 / 5.6e-3
+    assert max_err("parabola", "onion_peeling") < 6e-4
+    assert max_err("ellipse", "onion_peeling") < 6e-3
+
+
+def test_edge_model_on_a_profile_cut_by_the_window():
+    # Gaussian s = 0.7 cut at y = 1 (eps jumps to 0 there): the inverse of the cut data is
+    # f(r) + (1/pi) int_1^inf F'(y) dy / sqrt(y^2 - r^2) (references.md section 5), the tail by scipy quad.
+    # measured: 8.9e-6 with the edge model, 1.45e-4 without
+    f, F, dF = ABEL_PAIRS["gaussian"](R, s=0.7)
+    tail = [integrate.quad(lambda y, r=r: ABEL_PAIRS["gaussian"](y, s=0.7)[2] / np.sqrt(y * y - r * r),
+                           1.0, np.inf)[0] for r in R[INNER][::4]]
+    expected = f[INNER][::4] + np.array(tail) / np.pi
+    ours = abel_invert_deflection(dF, dr_m=DR)[INNER][::4]
+    assert np.abs(ours - expected).max() < 2e-5
+
+
+def test_edge_model_does_not_raise_noise():
+    # 1 % noise on eps (numpy sampling): rms error of the edge-model operator vs the plain central-slope
+    # one (measured ratio 1.0001)
+    rng = np.random.default_rng(0)
+    f, F, dF = ABEL_PAIRS["gaussian"](R)
+    noisy = dF + 0.01 * np.abs(dF).max() * rng.standard_normal((200, N))
+    ops = [three_point_operator(N, edge_model=e) for e in (True, False)]
+    rms = [np.sqrt(np.mean((noisy @ D.T - f)[:, INNER] ** 2)) for D in ops]
+    assert rms[0] <= 1.2 * rms[1]
+    # linear propagation sigma^2 sum_k D_ik^2 predicts the scatter (measured 1.59e-3 rms)
+    predicted = 0.01 * np.abs(dF).max() * np.sqrt(np.mean((ops[0] ** 2).sum(axis=1)[INNER]))
+    assert rms[0] == pytest.approx(predicted, rel=0.1)
 
 
 def test_three_point_second_order_on_gaussian():

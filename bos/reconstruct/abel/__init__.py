@@ -15,7 +15,11 @@ functions that build D:
     eps is taken as linear on each interval [y_j - dr/2, y_j + dr/2] with the
     three-point (central) slope, and the kernel integrated exactly — the
     derivative-form counterpart of Dasch's three-point method (which fits a
-    quadratic to F, i.e. a linear F' from three points).
+    quadratic to F, i.e. a linear F' from three points).  The outer edge of
+    the data has its own model, eps = A + B t + C sqrt(t) on the last two
+    intervals, with the sqrt part removed from the whole line and inverted
+    exactly: profiles that end at the edge give eps a jump or square-root
+    cusp there (see :mod:`.three_point`).
 ``"onion_peeling"``
     rings of constant radial index gradient dn/dr: the deflection of the ray
     through the middle of annulus i is a triangular sum over the rings
