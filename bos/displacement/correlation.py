@@ -89,6 +89,10 @@ def _direct_stack(a, b, *, workers):
     return ty, tx, peak, (c0, (cym, cyp), (cxm, cxp))
 
 
+# Pixels per chunk of window stacks processed together (4 MB of float32 per stack).
+_CHUNK_ELEMS = 1 << 20
+
+
 def _own_stack(stack, image):
     """``stack`` as a float32 array of its own (reshaping overlapping windows already copies)."""
     if stack.dtype == np.float32 and not np.may_share_memory(stack, image):
@@ -162,33 +166,44 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             del dyp, dxp
         else:
             a, b = ref[r0:r1, c0:c1], meas[r0:r1, c0:c1]
-        A = sliding_window_view(a, (window, window))[::step, ::step]
-        B = sliding_window_view(b, (window, window))[::step, ::step]
-        nbr, nbc = A.shape[:2]
-        A, B = (_own_stack(X.reshape(-1, window, window), x) for X, x in ((A, a), (B, b)))
-        weight = None
+        A_all = sliding_window_view(a, (window, window))[::step, ::step]
+        B_all = sliding_window_view(b, (window, window))[::step, ::step]
+        M_all = None
         if mask is not None and mask[r0:r1, c0:c1].any():
-            M = sliding_window_view(mask[r0:r1, c0:c1], (window, window))[::step, ::step]
-            weight = (~M).reshape(-1, window, window).astype(np.float32)
-            frac = 1.0 - weight.mean(axis=(1, 2))
-            masked[sl] = (frac > mask_fraction).reshape(nbr, nbc)
-        A = _zero_mean(A, weight)
-        B = _zero_mean(B, weight)
-        if direct and deform:
-            ty, tx, pk, sums = _direct_stack(A, B, workers=workers)
-            if shift_bias is not None and shift_bias.residual is not None:
-                ty -= shift_bias.residual(ty)
-                tx -= shift_bias.residual(tx)
-        else:
-            sums = None
-            ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
-        ry[sl] = ty.reshape(nbr, nbc)
-        rx[sl] = tx.reshape(nbr, nbc)
-        peak[sl] = pk.reshape(nbr, nbc)
-        if statistics:
-            s_y, s_x = correlation_statistics(A, B, sums=sums)
-            sy[sl] = s_y.reshape(nbr, nbc)
-            sx[sl] = s_x.reshape(nbr, nbc)
+            M_all = sliding_window_view(mask[r0:r1, c0:c1], (window, window))[::step, ::step]
+        nbr, nbc = A_all.shape[:2]
+        # the window stacks are built and correlated a few window rows at a time (chunks of
+        # ~_CHUNK_ELEMS pixels) rather than a whole band at once: the products of the direct
+        # sums and statistics then stay in cache.  Strong 4 MP field, medians of 3 x 3
+        # interleaved runs: whole bands 1.36-1.45 s, chunks of 2048 / 4096 / 8192 windows of
+        # 16 px 1.20-1.22 / 1.04-1.19 / 1.37-1.38 s (process CPU time 1.81-1.94 -> 1.52-1.63 s).
+        sub = max(1, _CHUNK_ELEMS // (nbc * window * window))
+        for i0 in range(0, nbr, sub):
+            i1 = min(i0 + sub, nbr)
+            ch = (slice(b0 + i0, b0 + i1), sl[1])
+            A, B = (_own_stack(X[i0:i1].reshape(-1, window, window), x) for X, x in ((A_all, a), (B_all, b)))
+            weight = None
+            if M_all is not None:
+                weight = (~M_all[i0:i1]).reshape(-1, window, window).astype(np.float32)
+                frac = 1.0 - weight.mean(axis=(1, 2))
+                masked[ch] = (frac > mask_fraction).reshape(i1 - i0, nbc)
+            A = _zero_mean(A, weight)
+            B = _zero_mean(B, weight)
+            if direct and deform:
+                ty, tx, pk, sums = _direct_stack(A, B, workers=workers)
+                if shift_bias is not None and shift_bias.residual is not None:
+                    ty -= shift_bias.residual(ty)
+                    tx -= shift_bias.residual(tx)
+            else:
+                sums = None
+                ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
+            ry[ch] = ty.reshape(i1 - i0, nbc)
+            rx[ch] = tx.reshape(i1 - i0, nbc)
+            peak[ch] = pk.reshape(i1 - i0, nbc)
+            if statistics:
+                s_y, s_x = correlation_statistics(A, B, sums=sums)
+                sy[ch] = s_y.reshape(i1 - i0, nbc)
+                sx[ch] = s_x.reshape(i1 - i0, nbc)
 
     # (processing row bands concurrently in threads, each single-threaded, was tried:
     # no measurable gain on the shared 2-core machine, 2.3 -> 2.3-2.7 s on a 4 MP pair)
