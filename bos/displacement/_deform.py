@@ -127,7 +127,8 @@ def sample(coef: np.ndarray, rr: np.ndarray, cc: np.ndarray, *, order: int, work
     return out
 
 
-def deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp, *, order, workers, symmetric=True, ref=None):
+def deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp, *, order, workers, symmetric=True, ref=None,
+                where=None):
     """Deform the block rows r0:r1, cols c0:c1 of both images by the predictor.
 
     Symmetric (default): the reference is sampled at ``p - d/2`` and the
@@ -137,16 +138,29 @@ def deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp, *, order, workers
     mid-point.  One-sided (``symmetric=False``): the reference block is
     taken as is (``ref``) and the measurement sampled at ``p + d``; vectors
     refer to reference positions and only one image is interpolated.
-    ``dyp, dxp`` hold the predictor at every block pixel.
+    ``dyp, dxp`` hold the predictor at every block pixel.  With ``where``
+    (bool, block shape) only those pixels are interpolated; the others of
+    the returned blocks are 0.
     """
     rows = np.arange(r0, r1, dtype=np.float32)[:, None]
     cols = np.arange(c0, c1, dtype=np.float32)[None, :]
+    if where is not None:
+        rows, cols = (np.broadcast_to(v, where.shape)[where] for v in (rows, cols))
+        dyp, dxp = dyp[where], dxp[where]
+
+    def full(values):
+        if where is None:
+            return values
+        out = np.zeros(where.shape, dtype=np.float32)
+        out[where] = values
+        return out
+
     if not symmetric:
         a = np.array(ref[r0:r1, c0:c1], dtype=np.float32)
         b = sample(coef_meas, rows + dyp, cols + dxp, order=order, workers=workers)
-        return a, b
+        return a, full(b)
     hy = 0.5 * dyp
     hx = 0.5 * dxp
     a = sample(coef_ref, rows - hy, cols - hx, order=order, workers=workers)
     b = sample(coef_meas, rows + hy, cols + hx, order=order, workers=workers)
-    return a, b
+    return full(a), full(b)

@@ -121,9 +121,8 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     correlation residual), the peak height, the masked flags and, when
     ``statistics``, the correlation-statistics uncertainty.  With ``redo``
     (bool, grid shape) and ``previous`` (the same outputs of a pass on this
-    grid), only bands of windows holding a ``redo`` window are computed (each
-    over the column span of its ``redo`` windows); the other windows keep
-    ``previous``.
+    grid), only the ``redo`` windows are computed (their pixels deformed band
+    by band); the other windows keep ``previous``.
     """
     ny, nx = ref.shape
     rs = window_starts(ny, window, step)
@@ -149,10 +148,15 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     if redo is not None:
         band = min(band, 8)
 
-    def run(b0, j0, j1):
+    def run(b0, j0, j1, sel=None):
         sl = (slice(b0, b0 + band), slice(j0, j1))
         r0, r1 = int(rs[b0]), int(rs[sl[0]][-1] + window)
         c0, c1 = int(cs[j0]), int(cs[j1 - 1] + window)
+        where = None
+        if sel is not None:
+            where = np.zeros((r1 - r0, c1 - c0), dtype=bool)
+            for i, j in zip(*np.nonzero(sel)):
+                where[i * step:i * step + window, j * step:j * step + window] = True
         if deform:
             prow = np.arange(r0, r1, dtype=np.float64)
             pcol = np.arange(c0, c1, dtype=np.float64)
@@ -162,7 +166,7 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
                 dyp += shift_bias(dyp)
                 dxp += shift_bias(dxp)
             a, b = _deform.deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp,
-                                       order=order, workers=workers, symmetric=symmetric, ref=ref)
+                                       order=order, workers=workers, symmetric=symmetric, ref=ref, where=where)
             del dyp, dxp
         else:
             a, b = ref[r0:r1, c0:c1], meas[r0:r1, c0:c1]
@@ -172,6 +176,10 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
         if mask is not None and mask[r0:r1, c0:c1].any():
             M_all = sliding_window_view(mask[r0:r1, c0:c1], (window, window))[::step, ::step]
         nbr, nbc = A_all.shape[:2]
+        if sel is not None:  # only the selected windows: one stack, scattered back
+            A_all, B_all = A_all[sel][None], B_all[sel][None]
+            M_all = None if M_all is None else M_all[sel][None]
+            nbr, nbc = 1, A_all.shape[1]
         # the window stacks are built and correlated a few window rows at a time (chunks of
         # ~_CHUNK_ELEMS pixels) rather than a whole band at once: the products of the direct
         # sums and statistics then stay in cache.  Strong 4 MP field, medians of 3 x 3
@@ -181,12 +189,19 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
         for i0 in range(0, nbr, sub):
             i1 = min(i0 + sub, nbr)
             ch = (slice(b0 + i0, b0 + i1), sl[1])
+
+            def put(arr, values, ch=ch, rows=i1 - i0):
+                if sel is None:
+                    arr[ch] = values.reshape(rows, nbc)
+                else:
+                    arr[sl][sel] = values.ravel()
+
             A, B = (_own_stack(X[i0:i1].reshape(-1, window, window), x) for X, x in ((A_all, a), (B_all, b)))
             weight = None
             if M_all is not None:
                 weight = (~M_all[i0:i1]).reshape(-1, window, window).astype(np.float32)
                 frac = 1.0 - weight.mean(axis=(1, 2))
-                masked[ch] = (frac > mask_fraction).reshape(i1 - i0, nbc)
+                put(masked, (frac > mask_fraction))
             A = _zero_mean(A, weight)
             B = _zero_mean(B, weight)
             if direct and deform:
@@ -197,13 +212,13 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             else:
                 sums = None
                 ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
-            ry[ch] = ty.reshape(i1 - i0, nbc)
-            rx[ch] = tx.reshape(i1 - i0, nbc)
-            peak[ch] = pk.reshape(i1 - i0, nbc)
+            put(ry, ty)
+            put(rx, tx)
+            put(peak, pk)
             if statistics:
                 s_y, s_x = correlation_statistics(A, B, sums=sums)
-                sy[ch] = s_y.reshape(i1 - i0, nbc)
-                sx[ch] = s_x.reshape(i1 - i0, nbc)
+                put(sy, s_y)
+                put(sx, s_x)
 
     # (processing row bands concurrently in threads, each single-threaded, was tried:
     # no measurable gain on the shared 2-core machine, 2.3 -> 2.3-2.7 s on a 4 MP pair)
@@ -215,8 +230,9 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             if cols.size == 0:
                 continue
             j0, j1 = int(cols[0]), int(cols[-1]) + 1
-        run(b0, j0, j1)
-        done[b0:b0 + band, j0:j1] = True
+        sel = None if redo is None else redo[b0:b0 + band, j0:j1]
+        run(b0, j0, j1, sel)
+        done[b0:b0 + band, j0:j1] = True if sel is None else sel
     dy = py + ry
     dx = px + rx
     if redo is not None:
@@ -503,14 +519,18 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
                    _smooth(replace_invalid(dx, bad | masked), smooth))
             if final and converged is not None:
                 # converged windows keep this pass's result; the next pass only redoes the
-                # bands of windows (3 x 3 neighbourhood) whose predictor still changes.
-                # Default converged = 0.06 px: after the residual-gain correction the cross-axis
-                # leak (+-0.003 px at r = 0.1 px, deformation_bias) remains, ~3 % of r, so r < 0.06
-                # px leaves < 0.002 px (the peak-locking bound).  Against 0.03 px with max_binning 2 (strong 4 MP field,
-                # A/B runs): windows redone 25 % -> 3 %, 1.34 -> 1.13 s, rms 0.0051 -> 0.0052 px;
-                # uniform-shift bias of the tests <= 0.0015 px either way.
+                # windows (3 x 3 neighbourhood) whose predictor still changes.
                 # Measured (strong benchmark field, A/B runs): 4 MP 1.83 -> 1.67 s, 24 MP
                 # 12.0 -> 9.9 s, rms unchanged (0.0044 px at 24 MP); 37 % of the windows redone at 4 MP.
+                # Default converged = 0.06 px: after the residual-gain correction the cross-axis
+                # leak (+-0.003 px at r = 0.1 px, deformation_bias) remains, ~3 % of r, so r < 0.06
+                # px leaves < 0.002 px (the peak-locking bound).  Against 0.03 px with max_binning 2
+                # (strong 4 MP field, A/B runs): windows redone 25 % -> 3 %, 1.34 -> 1.13 s, rms
+                # 0.0051 -> 0.0052 px; uniform-shift bias of the tests <= 0.0015 px either way.
+                # Only the redone windows' pixels are deformed and correlated (not all windows
+                # of a band across the span of its redone ones): that pass 0.20 -> 0.11 s, but
+                # the windows it used to redo incidentally no longer improve: rms 0.00516 ->
+                # 0.00527 px, worst uniform-shift bias of the tests 0.00145 -> 0.00165 px.
                 change = _predictor_update(predictor, new)
                 valid = ~(bad | masked)
                 last = not valid.any() or np.percentile(change[valid], 99) < converged
