@@ -49,10 +49,13 @@ def test_axisymmetric_hot_air_column(delta_t):
     assert np.sqrt(np.nanmean((profile - t_true) ** 2)) < 0.03 * delta_t
     assert np.nanmax(res.density[rows, centre]) < AIR.ambient_density  # hot core is less dense
     assert res.info["asymmetry"] < 0.02
-    # the stated 1-sigma is of the size of the actual error near the axis (within a factor 3)
-    err = np.abs(res.temperature[rows, centre] - t_true[centre]).mean()
-    sig = np.nanmean(res.sigma_temperature[rows, centre])
-    assert err / 3 < sig < 3 * max(err, 0.1)
+    # the stated 1-sigma is of the size of the actual error in the core |x| < s (rms over
+    # all rows and core columns, which is far less noisy than one column): measured
+    # ratio sigma/rms 1.4 (50 K) and 1.2 (100 K); bound: within a factor 2.5
+    core = np.abs(x) < s
+    rms = np.sqrt(np.nanmean((res.temperature[rows][:, core] - t_true[core]) ** 2))
+    sig = np.sqrt(np.nanmean(res.sigma_temperature[rows][:, core] ** 2))
+    assert rms / 2.5 < sig < 2.5 * rms
 
 
 def test_planar_heated_layer_of_known_width():
