@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any, Callable, Mapping
 
 from .errors import ConfigError, DataFileError
+from .safety import ILLUMINATION_KINDS, SOURCE_KINDS  # one list: the kinds that have cautions
 
 # ---------------------------------------------------------------------------
 # Schema: section -> key -> Spec
@@ -63,13 +64,6 @@ class Spec:
     help: str = ""
 
 
-SOURCE_KINDS = (
-    "none", "hot-air", "plume", "flame", "gas-jet", "compressed-gas",
-    "spark", "ultrasound", "shock", "other",
-)
-ILLUMINATION_KINDS = (
-    "ambient", "led", "high-power-led", "strobe", "flash", "laser", "arc-lamp", "screen",
-)
 
 SCHEMA: dict[str, dict[str, Spec]] = {
     "camera": {

@@ -277,6 +277,28 @@ class Rig:
         return self.total_blur_px * self.object_pixel_m
 
 
+def object_plane_coordinates(rows_px, cols_px, *, shape, object_pixel_m: float):
+    """Object-plane coordinates (y_m, x_m) [m] of pixel positions.
+
+    ``x = (col - (N_cols - 1)/2) * object_pixel_m`` and likewise y, with y
+    pointing down (growing with the row index); ``object_pixel_m`` is
+    :attr:`Rig.object_pixel_m` (= pitch * Z_A / z_i).  The single home of
+    this convention (docs/architecture.md); rows and cols are broadcast as given.
+    """
+    try:
+        n_rows, n_cols = (int(v) for v in shape)
+    except (TypeError, ValueError):
+        raise InputError(f"shape must be (rows, cols), got {shape!r}") from None
+    if n_rows <= 0 or n_cols <= 0:
+        raise InputError(f"shape must be positive, got {shape!r}")
+    size = float(object_pixel_m)
+    if not math.isfinite(size) or size <= 0:
+        raise InputError(f"object pixel size must be positive and finite, got {size!r}")
+    y = (np.asarray(rows_px, dtype=float) - (n_rows - 1) / 2.0) * size
+    x = (np.asarray(cols_px, dtype=float) - (n_cols - 1) / 2.0) * size
+    return y, x
+
+
 def z_d_sweep(rig: Rig, *, n: int = 200) -> dict[str, np.ndarray]:
     """Sensitivity and blur of ``rig`` as Z_D varies (Z_A kept if given, else Z_B).
 

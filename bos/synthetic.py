@@ -712,11 +712,10 @@ def pixel_to_object(rows: Any, cols: Any, *, shape: tuple[int, int], rig: Any = 
     -------
     (y_m, x_m) : ndarrays
     """
-    n_rows, n_cols = _check_shape(shape)
-    size = _object_pixel(rig, object_pixel_m)
-    y = (np.asarray(rows, dtype=float) - (n_rows - 1) / 2.0) * size
-    x = (np.asarray(cols, dtype=float) - (n_cols - 1) / 2.0) * size
-    return y, x
+    from .optics import object_plane_coordinates
+
+    _check_shape(shape)
+    return object_plane_coordinates(rows, cols, shape=shape, object_pixel_m=_object_pixel(rig, object_pixel_m))
 
 
 def displacement_from_deflection(eps_y: Any, eps_x: Any, *, rig: Any) -> tuple[np.ndarray, np.ndarray]:

@@ -96,16 +96,9 @@ def object_coordinates(rows_px, cols_px, *, rig, shape):
     ``x = (col - (N_cols - 1)/2) * object_pixel_m``, likewise y (y down),
     ``object_pixel_m = pitch * Z_A / z_i`` (docs/architecture.md).
     """
-    try:
-        n_rows, n_cols = (int(v) for v in shape)
-    except (TypeError, ValueError):
-        raise InputError(f"shape must be (rows, cols), got {shape!r}") from None
-    if n_rows <= 0 or n_cols <= 0:
-        raise InputError(f"shape must be positive, got {shape!r}")
-    size = float(rig.object_pixel_m)
-    y = (np.asarray(rows_px, dtype=float) - (n_rows - 1) / 2.0) * size
-    x = (np.asarray(cols_px, dtype=float) - (n_cols - 1) / 2.0) * size
-    return y, x
+    from ..optics import object_plane_coordinates
+
+    return object_plane_coordinates(rows_px, cols_px, shape=shape, object_pixel_m=rig.object_pixel_m)
 
 
 def ray_slopes(rows_px, cols_px, *, rig, shape):
