@@ -232,7 +232,9 @@ def test_save_run_leaves_nothing_when_a_later_file_fails(tmp_path, monkeypatch):
     def broken(*args, **kwargs):
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(pipeline, "write_profile_csv", broken)
+    from bos import output
+
+    monkeypatch.setattr(output, "write_profile_csv", broken)
     with pytest.raises(OSError, match="disk full"):
         pipeline.save_run(result, exp)
     assert list((tmp_path / "out").iterdir()) == []
