@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import contextlib
 import os
 from pathlib import Path
 from typing import Any
@@ -185,15 +184,19 @@ def write_profile_csv(path: str | Path, samples: dict[str, tuple[np.ndarray, str
 def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     """Write the HDF5 result, the figures and the profile CSV of a run.
 
-    Each file is written atomically (temporary file + rename).  The result
-    file is written first; figures follow (skipped when
-    ``output.figures = false``).  If any file fails, the files already
-    written by this call are removed again, so no partial result is left.
+    The files of one run form a transaction (:class:`bos._io.OutputSet`):
+    they are written into a hidden staging folder beside the destination
+    and swapped in only when all of them are complete, with a manifest
+    ``<name>-run.json`` (run id + SHA-256 of each file; the result file
+    carries the same ``run_id`` attribute).  A failure or interruption
+    leaves the earlier set of that name untouched; a crash during the swap
+    is completed by the next run.  Figures are skipped when
+    ``output.figures = false``.
 
     Returns
     -------
     list of Path
-        The written files, result file first.
+        The written files, result file first (the manifest not included).
 
     Raises
     ------
@@ -210,21 +213,19 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     attrs["coordinate_note"] = Y_DOWN_NOTE
     attrs["title"] = f"BOS result {exp.output.name}"
     attrs["Conventions"] = "CF-1.8"
-    written: list[Path] = []
-    try:
-        written.append(Path(store.write_result(paths["result"], coords=coords, variables=variables, attrs=attrs)))
+    from ._io import OutputSet
+
+    run_id = attrs.get("run_id")
+    with OutputSet(paths["result"].parent, exp.output.name, run_id=run_id) as out:
+        attrs["run_id"] = out.run_id
+        store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs)
         line = exp.output.profile or _default_profile(result)
         samples = sample_profile(as_result_data(result, gas=gas), line)
-        written.append(write_profile_csv(paths["profile_csv"], samples))
+        write_profile_csv(out.path(paths["profile_csv"]), samples)
         if exp.output.figures:
-            written += _figures(result, paths, line, samples)
-    except BaseException:
-        # all or nothing: a run that fails half-way leaves no result behind
-        for p in written:
-            with contextlib.suppress(OSError):
-                Path(p).unlink()
-        raise
-    return [Path(p) for p in written]
+            staged = {k: (out.path(v) if k.startswith("fig_") else v) for k, v in paths.items()}
+            _figures(result, staged, line, samples)
+        return out.commit()
 
 
 def _figures(result: RunResult, paths: dict[str, Path], line, samples) -> list[Path]:

@@ -13,7 +13,6 @@ through :func:`bos._io.atomic_path` (temporary file + rename) and open with
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -401,17 +400,15 @@ def file_sha256(path: str | os.PathLike) -> str:
     DataFileError
         Missing or unreadable file.
     """
+    from ._io import file_sha256 as _sha256
+
     p = Path(path)
-    h = hashlib.sha256()
     try:
-        with open(p, "rb") as fh:
-            for block in iter(lambda: fh.read(1 << 20), b""):
-                h.update(block)
+        return _sha256(p)
     except FileNotFoundError:
         raise DataFileError(f"file not found: {p}") from None
     except OSError as exc:
         raise DataFileError(f"cannot read {p}: {exc.strerror or exc}") from None
-    return h.hexdigest()
 
 
 # --------------------------------------------------------------------------- CSV export and profiles

@@ -48,7 +48,21 @@ def get_app() -> typer.Typer:
     return app
 
 
+def _sigterm_as_interrupt() -> None:
+    """SIGTERM cleans up like Ctrl-C: staged output is discarded, earlier results stay."""
+    import signal
+
+    def handler(signum, frame):  # noqa: ARG001
+        raise KeyboardInterrupt
+
+    try:
+        signal.signal(signal.SIGTERM, handler)
+    except ValueError:  # not the main thread (embedded use)
+        pass
+
+
 def main() -> None:
+    _sigterm_as_interrupt()
     get_app()()
 
 

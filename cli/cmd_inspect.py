@@ -32,8 +32,12 @@ def describe(path: Path) -> dict[str, Any]:
     attrs = data.attrs
     keep = ("software", "software_version", "experiment_file", "inputs", "input_sha256", "rig", "medium",
             "processing", "reconstruction", "cautions", "coordinate_note")
+    from bos._io import check_output_set
+
     return jsonable({
         "file": str(path),
+        "run_id": attrs.get("run_id"),
+        "file_set_warnings": check_output_set(path, attrs.get("run_id")),
         "summary": attrs.get("summary", {}),
         "variables": variables,
         "attributes": {k: attrs[k] for k in keep if k in attrs},
@@ -58,6 +62,8 @@ def register(app: typer.Typer) -> None:
         from cli.cmd_run import print_summary
 
         print_summary(info["summary"], title=f"{result}")
+        for w in info["file_set_warnings"]:
+            typer.secho(f"warning: {w}", fg=typer.colors.YELLOW, err=True)
         table = Table(title="variables", header_style="bold")
         for col in ("name", "shape", "units", "min", "max"):
             table.add_column(col, no_wrap=True)
