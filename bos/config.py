@@ -15,6 +15,7 @@ the single source of truth for it.
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import math
 import tomllib
 from dataclasses import dataclass, field
@@ -40,7 +41,7 @@ class Spec:
     default : object
         Value used when the key is absent (``None`` = not set).
     lo, hi : float, optional
-        Inclusive numeric range (checked for numbers).
+        Inclusive numeric range (checked for numbers, in file units).
     positive : bool
         Require a value > 0.
     choices : tuple of str, optional
@@ -50,7 +51,12 @@ class Spec:
     target : str, optional
         Name of the SI attribute in the section dataclass (defaults to key).
     help : str
-        One-line description (used in the docs).
+        One-line description (used in the docs, the template and ``--help``).
+    option : str, optional
+        Command-line option that sets the key (default ``--key-with-dashes``;
+        ``""`` = no option).  Error messages name it beside the file key.
+    example : object, optional
+        Value written (uncommented) by ``bos init`` for keys a run needs.
     """
 
     kind: str
@@ -62,30 +68,37 @@ class Spec:
     scale: float = 1.0
     target: str | None = None
     help: str = ""
+    option: str | None = None
+    example: Any = None
 
 
-
+# Sane ranges (issue: absurd but in-range values such as a 1e308 m distance or a
+# focal length typed in metres must not silently change a result).  The limits
+# are common practice for camera-based BOS, wide enough for phone cameras
+# (f ~ 2 mm, 0.6 um pixels), long telephoto lenses (5 m) and outdoor scenes
+# with a background up to 1 km away.
 SCHEMA: dict[str, dict[str, Spec]] = {
     "camera": {
-        "focal_length_mm": Spec("float", positive=True, scale=1e-3, target="focal_length_m",
-                                help="lens focal length [mm]"),
-        "pixel_pitch_um": Spec("float", positive=True, scale=1e-6, target="pixel_pitch_m",
-                               help="sensor pixel pitch [um]"),
+        "focal_length_mm": Spec("float", lo=1.0, hi=5000.0, scale=1e-3, target="focal_length_m",
+                                help="lens focal length [mm]", example=50),
+        "pixel_pitch_um": Spec("float", lo=0.5, hi=50.0, scale=1e-6, target="pixel_pitch_m",
+                               help="sensor pixel pitch [um]", example=5.0),
         "f_number": Spec("float", 8.0, lo=0.5, hi=128.0, help="lens f-number N"),
         "sensor_px": Spec("list", help="sensor size [rows, cols] in pixels"),
         "wavelength_nm": Spec("float", 550.0, lo=300.0, hi=1700.0, scale=1e-9, target="wavelength_m",
                               help="effective (vacuum) wavelength of the light [nm]"),
-        "model": Spec("str", help="camera model (free text)"),
+        "model": Spec("str", help="camera model (free text)", option=""),
     },
     "geometry": {
-        "camera_to_background_m": Spec("float", positive=True, target="z_b_m",
+        "camera_to_background_m": Spec("float", lo=0.01, hi=1000.0, target="z_b_m",
                                        help="Z_B: lens to background distance [m]"),
-        "object_to_background_m": Spec("float", positive=True, target="z_d_m",
-                                       help="Z_D: object (mid-plane) to background distance [m]"),
-        "camera_to_object_m": Spec("float", positive=True, target="z_a_m",
-                                   help="Z_A: lens to object distance [m]"),
-        "object_width_mm": Spec("float", positive=True, scale=1e-3, target="object_width_m",
-                                help="object width along the line of sight (planar) or diameter [mm]"),
+        "object_to_background_m": Spec("float", lo=0.001, hi=1000.0, target="z_d_m",
+                                       help="Z_D: object (mid-plane) to background distance [m]", example=0.5),
+        "camera_to_object_m": Spec("float", lo=0.01, hi=1000.0, target="z_a_m",
+                                   help="Z_A: lens to object distance [m]", example=1.0),
+        "object_width_mm": Spec("float", lo=0.01, hi=1.0e5, scale=1e-3, target="object_width_m",
+                                help="object width along the line of sight (planar) or diameter [mm]",
+                                example=100),
     },
     "medium": {
         "gas": Spec("str", "air", help="gas name (air, n2, o2, co2, ar, he, h2, h2o, ch4, sf6, c3h8)"),
@@ -93,46 +106,54 @@ SCHEMA: dict[str, dict[str, Spec]] = {
         "pressure_pa": Spec("float", 101325.0, lo=1.0e3, hi=1.0e7, help="static pressure [Pa]"),
         "temperature_c": Spec("float", lo=-100.0, hi=2000.0, help="ambient temperature [degC]"),
         "temperature_k": Spec("float", lo=173.15, hi=2273.15, help="ambient temperature [K]"),
-        "relative_humidity": Spec("float", 0.0, lo=0.0, hi=100.0, help="relative humidity [%]"),
+        "relative_humidity": Spec("float", 0.0, lo=0.0, hi=100.0, help="relative humidity [%]",
+                                  option="--humidity-pct"),
         "co2_ppm": Spec("float", 450.0, lo=0.0, hi=2000.0, help="CO2 content [umol/mol]"),
     },
     "source": {
-        "kind": Spec("str", "none", choices=SOURCE_KINDS, help="what makes the flow"),
+        "kind": Spec("str", "none", choices=SOURCE_KINDS, help="what makes the flow", option="--source"),
         "illumination": Spec("str", "ambient", choices=ILLUMINATION_KINDS, help="how the background is lit"),
-        "frequency_hz": Spec("float", positive=True, help="source frequency for periodic sources [Hz]"),
-        "description": Spec("str", help="free text"),
+        "frequency_hz": Spec("float", positive=True, hi=1.0e8,
+                             help="source frequency for periodic sources [Hz]"),
+        "description": Spec("str", help="free text", option=""),
     },
     "plan": {
         "noise_px": Spec("float", 0.05, positive=True, hi=5.0, help="displacement noise floor [px]"),
         "window_px": Spec("int", 32, lo=4, hi=1024, help="final interrogation window [px]"),
-        "expected_deflection_rad": Spec("float", positive=True, help="largest expected deflection [rad]"),
-        "target_dt_k": Spec("float", positive=True, help="smallest temperature difference to resolve [K]"),
+        "expected_deflection_rad": Spec("float", positive=True, hi=0.5,
+                                        help="largest expected deflection [rad]"),
+        "target_dt_k": Spec("float", positive=True, hi=3000.0,
+                            help="smallest temperature difference to resolve [K]"),
         "target_spl_db": Spec("float", lo=0.0, hi=200.0, help="smallest sound level to resolve [dB re 20 uPa]"),
         "solve_for": Spec("str", choices=("z_d", "focal_length", "f_number"),
                           help="quantity to solve for in inverse design"),
-        "max_blur_mm": Spec("float", positive=True, scale=1e-3, target="max_blur_m",
+        "max_blur_mm": Spec("float", positive=True, hi=1000.0, scale=1e-3, target="max_blur_m",
                             help="largest acceptable object-plane blur in inverse design [mm]"),
     },
     "images": {
-        "reference": Spec("path", help="reference image (no flow)"),
-        "measurement": Spec("path", help="measurement image (with flow)"),
+        "reference": Spec("path", help="reference image (no flow)", example="reference.png"),
+        "measurement": Spec("path", help="measurement image (with flow)", example="measurement.png"),
         "mask": Spec("path", help="mask image: nonzero = no data"),
-        "mask_polygons": Spec("list", help="polygons [[[col, row], ...], ...] in pixels marking no-data areas"),
+        "mask_polygons": Spec("list", help="polygons [[[col, row], ...], ...] in pixels marking no-data areas",
+                              option="--mask-polygon"),
         "frame": Spec("int", lo=0, help="frame index for multi-page TIFF or video"),
         "reference_frame": Spec("int", lo=0, help="frame index of the reference in a video"),
         "measurement_frame": Spec("int", lo=0, help="frame index of the measurement in a video"),
     },
     "processing": {
-        "method": Spec("str", "correlation", help="displacement estimator (correlation, flow)"),
+        "method": Spec("str", "correlation", choices=("correlation", "flow"),
+                       help="displacement estimator"),
         "window_px": Spec("int", 64, lo=4, hi=1024, help="first-pass interrogation window [px]"),
         "final_window_px": Spec("int", 16, lo=4, hi=1024, help="final interrogation window [px]"),
         "passes": Spec("int", 3, lo=1, hi=10, help="number of correlation passes"),
         "overlap": Spec("float", 0.5, lo=0.0, hi=0.9, help="window overlap fraction"),
-        "camera_motion": Spec("str", "border", choices=("none", "border", "mask"),
-                              help="global camera-motion removal: none, from a band along the image border, "
-                                   "or 'mask' = from the reconstruction reference region (ambient, no flow)"),
-        "outlier_threshold": Spec("float", 2.0, positive=True, help="normalised median test threshold"),
-        "outlier_eps_px": Spec("float", 0.1, positive=True, help="normalised median test epsilon [px]"),
+        "camera_motion": Spec("str", "auto", choices=("auto", "none", "border", "mask"),
+                              help="global camera-motion removal: 'auto' = from the reference region (planar) or "
+                                   "the image border (otherwise), using only vectors the data show to be flow-free; "
+                                   "'border' = the border band; 'mask' = the reconstruction reference region; "
+                                   "'none'"),
+        "outlier_threshold": Spec("float", 2.0, positive=True, hi=100.0, help="normalised median test threshold"),
+        "outlier_eps_px": Spec("float", 0.1, positive=True, hi=10.0, help="normalised median test epsilon [px]"),
     },
     "reconstruction": {
         "kind": Spec("str", "planar", choices=("planar", "axisymmetric", "none"),
@@ -140,22 +161,42 @@ SCHEMA: dict[str, dict[str, Spec]] = {
         "axis": Spec("str", "vertical", choices=("vertical", "horizontal"),
                      help="orientation of the symmetry axis (axisymmetric)"),
         "axis_px": Spec("float", help="symmetry-axis position in pixels (column for a vertical axis); omit to fit"),
-        "abel_method": Spec("str", "three_point", help="Abel inversion method"),
+        "abel_method": Spec("str", "three_point", choices=("three_point", "onion_peeling"),
+                            help="Abel inversion method"),
         "boundary": Spec("str", "neumann", choices=("neumann", "dirichlet", "mixed"),
                          help="boundary condition of the Poisson integration"),
         "reference_region": Spec("any", "edges",
                                  help="where the gas is ambient: 'edges', 'left', 'right', 'top', 'bottom' "
                                       "or [row0, row1, col0, col1] in pixels"),
         "weighted": Spec("bool", True, help="weight the least-squares integration by 1/sigma^2"),
-        "solver": Spec("str", "auto", help="Poisson solver (auto, dct, multigrid)"),
+        "solver": Spec("str", "auto", choices=("auto", "dct", "sparse", "multigrid", "pcg"),
+                       help="Poisson solver"),
     },
     "output": {
-        "directory": Spec("path", "bos-output", help="output directory"),
+        "directory": Spec("path", "bos-output", help="output directory", option="--out"),
         "name": Spec("str", "result", help="base name of the result files"),
         "figures": Spec("bool", True, help="write figures"),
         "profile": Spec("list", help="profile line [[x0_mm, y0_mm], [x1_mm, y1_mm]] in object-plane mm"),
     },
 }
+
+REFERENCE_REGIONS = ("edges", "left", "right", "top", "bottom")
+
+
+def option_name(dotted: str) -> str:
+    """Command-line option that sets the file key ``section.key`` (``""`` if none)."""
+    section, key = dotted.split(".", 1)
+    spec = SCHEMA[section][key]
+    return ("--" + key.replace("_", "-")) if spec.option is None else spec.option
+
+
+def key_label(dotted: str) -> str:
+    """``--option (section.key)`` for messages (just the key when it has no option)."""
+    try:
+        opt = option_name(dotted)
+    except (KeyError, ValueError):
+        return dotted
+    return f"{opt} ({dotted})" if opt else dotted
 
 
 # ---------------------------------------------------------------------------
@@ -228,7 +269,7 @@ class ProcessingConfig:
     final_window_px: int = 16
     passes: int = 3
     overlap: float = 0.5
-    camera_motion: str = "border"
+    camera_motion: str = "auto"
     outlier_threshold: float = 2.0
     outlier_eps_px: float = 0.1
 
@@ -288,16 +329,12 @@ class Experiment:
     def rig(self):
         """The :class:`bos.optics.Rig` described by the camera and geometry sections."""
         cam, geo = self.camera, self.geometry
-        missing = [k for k, v in (("camera.focal_length_mm", cam.focal_length_m),
-                                  ("camera.pixel_pitch_um", cam.pixel_pitch_m)) if v is None]
-        if missing:
-            raise ConfigError(f"missing value: {', '.join(missing)}")
-        given = sum(v is not None for v in (geo.z_a_m, geo.z_b_m, geo.z_d_m))
-        if given != 2:
-            raise ConfigError(
-                "geometry needs exactly two of camera_to_background_m, object_to_background_m, "
-                f"camera_to_object_m (got {given})"
-            )
+        problems = [f"missing {key_label(k)}" for k, v in (("camera.focal_length_mm", cam.focal_length_m),
+                                                            ("camera.pixel_pitch_um", cam.pixel_pitch_m))
+                    if v is None]
+        problems += _geometry_problems(geo)
+        if problems:
+            raise _config_error(problems)
         from .optics import Rig
 
         return Rig(
@@ -343,8 +380,30 @@ def _type_name(value: Any) -> str:
     return type(value).__name__
 
 
+def _config_error(problems: list[str]) -> ConfigError:
+    """One ConfigError carrying every problem (one line; ``.problems`` keeps the list)."""
+    if len(problems) == 1:
+        err = ConfigError(problems[0])
+    else:
+        err = ConfigError(f"{len(problems)} problems in the experiment settings: " + "; ".join(problems))
+    err.problems = list(problems)
+    return err
+
+
+def range_text(spec: Spec) -> str:
+    """Allowed numeric range of a key in words ("between 1 and 5000", "> 0" ...)."""
+    lo = spec.lo
+    if lo is not None and spec.hi is not None:
+        return f"between {lo:g} and {spec.hi:g}"
+    if lo is not None:
+        return f">= {lo:g}"
+    if spec.positive and spec.hi is not None:
+        return f"> 0 and <= {spec.hi:g}"
+    return "> 0" if spec.positive else f"<= {spec.hi:g}"
+
+
 def _convert(section: str, key: str, spec: Spec, value: Any) -> Any:
-    where = f"{section}.{key}"
+    where = key_label(f"{section}.{key}")
     if spec.kind in ("float", "int"):
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise ConfigError(f"{where} must be a number, got {_type_name(value)} {value!r}")
@@ -356,18 +415,16 @@ def _convert(section: str, key: str, spec: Spec, value: Any) -> Any:
             value = float(value)
         if not math.isfinite(value):
             raise ConfigError(f"{where} must be finite, got {value!r}")
-        if spec.positive and value <= 0:
-            raise ConfigError(f"{where} must be > 0, got {value!r}")
-        if spec.lo is not None and value < spec.lo:
-            raise ConfigError(f"{where} must be >= {spec.lo:g}, got {value!r}")
-        if spec.hi is not None and value > spec.hi:
-            raise ConfigError(f"{where} must be <= {spec.hi:g}, got {value!r}")
+        if ((spec.positive and value <= 0) or (spec.lo is not None and value < spec.lo)
+                or (spec.hi is not None and value > spec.hi)):
+            raise ConfigError(f"{where} must be {range_text(spec)}, got {value!r}")
         return value * spec.scale if spec.kind == "float" else value
     if spec.kind == "str":
         if not isinstance(value, str):
             raise ConfigError(f"{where} must be a string, got {_type_name(value)} {value!r}")
         if spec.choices is not None and value not in spec.choices:
-            raise ConfigError(f"{where} must be one of {', '.join(spec.choices)}; got {value!r}")
+            raise ConfigError(f"{where} must be one of {', '.join(spec.choices)}; got {value!r}"
+                              + _did_you_mean(value, spec.choices))
         return value
     if spec.kind == "path":
         if not isinstance(value, str) or not value:
@@ -388,9 +445,26 @@ def _convert(section: str, key: str, spec: Spec, value: Any) -> Any:
     return value
 
 
+def _did_you_mean(word: str, candidates: Any) -> str:
+    close = difflib.get_close_matches(str(word), list(candidates), n=1, cutoff=0.6)
+    return f" (did you mean {close[0]!r}?)" if close else ""
+
+
+def _unknown_key(section: str, key: str) -> str:
+    """Message for an unknown key: a close spelling in the section, or the section it belongs to."""
+    msg = f"unknown key in [{section}]: {key}"
+    close = difflib.get_close_matches(key, list(SCHEMA[section]), n=1, cutoff=0.6)
+    if close:
+        return f"{msg} (did you mean {close[0]}?)"
+    homes = [name for name, specs in SCHEMA.items() if key in specs]
+    if homes:
+        return f"{msg} (it belongs in [{homes[0]}])"
+    return f"{msg} (known: {', '.join(SCHEMA[section])})"
+
+
 def _check_sensor(value: list) -> tuple[int, int]:
     if len(value) != 2 or not all(isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in value):
-        raise ConfigError(f"camera.sensor_px must be [rows, cols] positive integers, got {value!r}")
+        raise ConfigError(f"{key_label('camera.sensor_px')} must be [rows, cols] positive integers, got {value!r}")
     return int(value[0]), int(value[1])
 
 
@@ -402,7 +476,7 @@ def _check_composition(value: dict) -> dict[str, float]:
         out[str(gas)] = float(frac)
     total = sum(out.values())
     if not out or abs(total - 1.0) > 1e-6:
-        raise ConfigError(f"medium.composition mole fractions must sum to 1, got {total:g}")
+        raise ConfigError(f"{key_label('medium.composition')} mole fractions must sum to 1, got {total:g}")
     return out
 
 
@@ -411,39 +485,43 @@ def _check_profile(value: list) -> list:
         (x0, y0), (x1, y1) = value
         pts = [[float(x0) * 1e-3, float(y0) * 1e-3], [float(x1) * 1e-3, float(y1) * 1e-3]]
     except (TypeError, ValueError):
-        raise ConfigError(f"output.profile must be [[x0_mm, y0_mm], [x1_mm, y1_mm]], got {value!r}") from None
+        raise ConfigError(f"{key_label('output.profile')} must be [[x0_mm, y0_mm], [x1_mm, y1_mm]], "
+                          f"got {value!r}") from None
+    if not all(math.isfinite(v) for pt in pts for v in pt):
+        raise ConfigError(f"{key_label('output.profile')} must hold finite numbers, got {value!r}")
     if pts[0] == pts[1]:
-        raise ConfigError("output.profile start and end points are the same")
+        raise ConfigError(f"{key_label('output.profile')} start and end points are the same")
     return pts
 
 
 def _check_polygons(value: list) -> list:
     polys = []
+    label = key_label("images.mask_polygons")
     for i, poly in enumerate(value):
         try:
             pts = [(float(c), float(r)) for c, r in poly]
         except (TypeError, ValueError):
-            raise ConfigError(f"images.mask_polygons[{i}] must be a list of [col, row] points") from None
+            raise ConfigError(f"{label} polygon {i} must be a list of [col, row] points") from None
         if len(pts) < 3:
-            raise ConfigError(f"images.mask_polygons[{i}] needs at least 3 points, got {len(pts)}")
+            raise ConfigError(f"{label} polygon {i} needs at least 3 points, got {len(pts)}")
         polys.append(pts)
     return polys
 
 
 def _check_reference_region(value: Any) -> Any:
-    names = ("edges", "left", "right", "top", "bottom")
+    label = key_label("reconstruction.reference_region")
     if isinstance(value, str):
-        if value not in names:
-            raise ConfigError(f"reconstruction.reference_region must be one of {', '.join(names)} "
-                              f"or [row0, row1, col0, col1]; got {value!r}")
+        if value not in REFERENCE_REGIONS:
+            raise ConfigError(f"{label} must be one of {', '.join(REFERENCE_REGIONS)} "
+                              f"or [row0, row1, col0, col1]; got {value!r}" + _did_you_mean(value, REFERENCE_REGIONS))
         return value
     if (isinstance(value, list) and len(value) == 4
             and all(isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in value)):
         r0, r1, c0, c1 = value
         if r1 <= r0 or c1 <= c0:
-            raise ConfigError(f"reconstruction.reference_region is empty: {value!r}")
+            raise ConfigError(f"{label} is empty: {value!r}")
         return tuple(value)
-    raise ConfigError(f"reconstruction.reference_region must be a name or [row0, row1, col0, col1], got {value!r}")
+    raise ConfigError(f"{label} must be a name or [row0, row1, col0, col1], got {value!r}")
 
 
 _POST: dict[tuple[str, str], Callable[[Any], Any]] = {
@@ -455,49 +533,93 @@ _POST: dict[tuple[str, str], Callable[[Any], Any]] = {
 }
 
 
-def _build_section(name: str, table: Mapping[str, Any]) -> Any:
+def _build_section(name: str, table: Mapping[str, Any], problems: list[str]) -> Any:
+    """The section dataclass; every problem found is appended to ``problems``."""
     specs = SCHEMA[name]
+    cls = _SECTION_CLASSES[name]
     if not isinstance(table, Mapping):
-        raise ConfigError(f"[{name}] must be a table")
-    unknown = sorted(set(table) - set(specs))
-    if unknown:
-        raise ConfigError(f"unknown key in [{name}]: {', '.join(unknown)} (known: {', '.join(specs)})")
+        problems.append(f"[{name}] must be a table, got {_type_name(table)} {table!r}")
+        return cls()
+    problems.extend(_unknown_key(name, k) for k in table if k not in specs)
     kwargs: dict[str, Any] = {}
     for key, spec in specs.items():
         if key not in table:
             continue
-        value = _convert(name, key, spec, table[key])
-        post = _POST.get((name, key))
-        if post is not None:
-            value = post(value)
-        kwargs[spec.target or key] = value
+        try:
+            value = _convert(name, key, spec, table[key])
+            post = _POST.get((name, key))
+            kwargs[spec.target or key] = value if post is None else post(value)
+        except ConfigError as exc:
+            problems.append(str(exc))
     if name == "medium":
-        if "temperature_c" in kwargs and "temperature_k" in kwargs:
-            raise ConfigError("[medium] give temperature_c or temperature_k, not both")
+        if "temperature_c" in table and "temperature_k" in table:
+            problems.append("[medium] give temperature_c or temperature_k (--temperature-c or "
+                            "--temperature-k), not both")
         if "temperature_c" in kwargs:
             kwargs["temperature_k"] = kwargs.pop("temperature_c") + 273.15
-        if kwargs.get("composition") and "gas" in table:
-            raise ConfigError("[medium] give gas or composition, not both")
-    cls = _SECTION_CLASSES[name]
+        if "composition" in table and "gas" in table:
+            problems.append("[medium] give gas or composition (--gas or --composition), not both")
     fields = {f.name for f in dataclasses.fields(cls)}
     return cls(**{k: v for k, v in kwargs.items() if k in fields})
+
+
+def _geometry_problems(geo: "GeometryConfig") -> list[str]:
+    given = sum(v is not None for v in (geo.z_a_m, geo.z_b_m, geo.z_d_m))
+    if given == 2:
+        return []
+    keys = ", ".join(key_label(f"geometry.{k}") for k in
+                     ("camera_to_background_m", "object_to_background_m", "camera_to_object_m"))
+    return [f"geometry needs exactly two of {keys} (got {given})"]
 
 
 def experiment_from_dict(data: Mapping[str, Any], *, base_dir: str | Path = ".",
                          source_file: str | Path | None = None) -> Experiment:
     """Validate a parsed experiment mapping and return an :class:`Experiment`.
 
+    Every problem is collected and reported at once in one :class:`ConfigError`
+    (one line; the list is also in its ``problems`` attribute).
+
     Raises
     ------
     ConfigError
-        Unknown section or key, wrong type, out-of-range value.
+        Unknown section or key (with a "did you mean" for close spellings),
+        wrong type, out-of-range value.
     """
-    unknown = sorted(set(data) - set(SCHEMA))
-    if unknown:
-        raise ConfigError(f"unknown section: {', '.join(unknown)} (known: {', '.join(SCHEMA)})")
-    sections = {name: _build_section(name, data.get(name, {})) for name in SCHEMA}
+    problems: list[str] = []
+    for name in data:
+        if name not in SCHEMA:
+            homes = [s for s, specs in SCHEMA.items() if name in specs]
+            hint = (f" (it is a key of [{homes[0]}])" if homes
+                    else _did_you_mean(name, SCHEMA) or f" (known: {', '.join(SCHEMA)})")
+            problems.append(f"unknown section: {name}{hint}")
+    sections = {name: _build_section(name, data.get(name, {}), problems) for name in SCHEMA}
+    if problems:
+        raise _config_error(problems)
     return Experiment(**sections, base_dir=Path(base_dir),
                       source_file=Path(source_file) if source_file else None)
+
+
+def missing_for_run(exp: Experiment, *, focal_length_from_exif: bool = True) -> list[str]:
+    """Settings a ``bos run`` needs that ``exp`` lacks, as ``missing --option (key)`` lines.
+
+    The focal length may come from the image EXIF, so it is only listed when
+    ``focal_length_from_exif`` is false.
+    """
+    needed = [("images.reference", exp.images.reference), ("images.measurement", exp.images.measurement),
+              ("camera.pixel_pitch_um", exp.camera.pixel_pitch_m)]
+    if not focal_length_from_exif:
+        needed.insert(2, ("camera.focal_length_mm", exp.camera.focal_length_m))
+    if exp.reconstruction.kind == "planar":
+        needed.append(("geometry.object_width_mm", exp.geometry.object_width_m))
+    problems = [f"missing {key_label(k)}" for k, v in needed if v is None]
+    return problems + _geometry_problems(exp.geometry)
+
+
+def check_run_settings(exp: Experiment) -> None:
+    """Raise one :class:`ConfigError` listing everything :func:`missing_for_run` finds."""
+    problems = missing_for_run(exp)
+    if problems:
+        raise _config_error(problems)
 
 
 def _set_dotted(data: dict, dotted: str, value: Any) -> None:
@@ -559,18 +681,17 @@ def schema_markdown() -> str:
     """Render the schema as Markdown tables (used to write docs/experiment-file.md)."""
     lines: list[str] = []
     for name, specs in SCHEMA.items():
-        lines += [f"### [{name}]", "", "| key | type | default | allowed | meaning |", "|---|---|---|---|---|"]
+        lines += [f"### [{name}]", "", "| key | option | type | default | allowed | meaning |",
+                  "|---|---|---|---|---|---|"]
         for key, s in specs.items():
             allowed = []
             if s.choices:
                 allowed.append(", ".join(s.choices))
-            if s.positive:
-                allowed.append("> 0")
-            if s.lo is not None:
-                allowed.append(f">= {s.lo:g}")
-            if s.hi is not None:
-                allowed.append(f"<= {s.hi:g}")
+            if s.kind in ("float", "int") and (s.positive or s.lo is not None or s.hi is not None):
+                allowed.append(range_text(s))
             default = "" if s.default is None else f"`{s.default}`"
-            lines.append(f"| `{key}` | {s.kind} | {default} | {'; '.join(allowed)} | {s.help} |")
+            opt = option_name(f"{name}.{key}")
+            opt = f"`{opt}`" if opt else ""
+            lines.append(f"| `{key}` | {opt} | {s.kind} | {default} | {'; '.join(allowed)} | {s.help} |")
         lines.append("")
     return "\n".join(lines)

@@ -19,8 +19,11 @@ app = typer.Typer(
     help="Quantitative background-oriented schlieren: plan a rig, process photo pairs, "
     "reconstruct density, temperature and sound pressure.",
     no_args_is_help=True,
-    add_completion=False,
+    add_completion=True,
     pretty_exceptions_enable=False,
+    # plain click help: boolean options read as flags (--json, --figures/--no-figures), units in [brackets]
+    rich_markup_mode=None,
+    context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100},
 )
 
 _LOADED = False
@@ -37,9 +40,24 @@ def _load_commands() -> None:
     _LOADED = True
 
 
+def _version_callback(value: bool) -> None:
+    if value:
+        from bos import __version__
+
+        typer.echo(f"bos {__version__}")
+        raise typer.Exit()
+
+
 @app.callback()
-def _root() -> None:
-    """Quantitative background-oriented schlieren toolkit."""
+def _root(
+    version: bool = typer.Option(False, "--version", "-V", callback=_version_callback, is_eager=True,
+                                 help="print the version and exit"),
+) -> None:
+    """Quantitative background-oriented schlieren toolkit.
+
+    Start with `bos init` (experiment-file template), `bos plan` (rig), `bos synth` (test pair)
+    or `bos demo`; every command has -h/--help with examples.
+    """
 
 
 def get_app() -> typer.Typer:

@@ -10,7 +10,8 @@ from typing import Any, Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import (abs_path, choices, emit_json, handle_errors, key_option, key_overrides, parse_composition,
+                         parse_polygons, parse_profile, parse_region)
 
 KINDS = ("planar", "axisymmetric", "none")
 
@@ -118,71 +119,86 @@ def run_and_save(exp, *, quiet: bool = False):
     return result, files
 
 
-def _abs(path: Optional[Path]) -> Optional[str]:
-    return None if path is None else str(Path(path).expanduser().resolve())
+RUN_EPILOG = """\b
+Examples:
+  bos run experiment.toml
+  bos run experiment.toml --window-px 48 --final-window-px 12 --no-figures --json
+  bos run --reference ref.png --measurement meas.png --focal-length-mm 50 \\
+      --pixel-pitch-um 5 --camera-to-object-m 1 --object-to-background-m 0.5 \\
+      --kind axisymmetric --axis vertical --camera-motion mask --reference-region left \\
+      --out results
+
+Without an experiment file the options describe the whole run; `bos init` writes a commented template."""
 
 
 def register(app: typer.Typer) -> None:
-    @app.command("run")
+    @app.command("run", epilog=RUN_EPILOG)
     @handle_errors
     def run(
         experiment: Optional[Path] = typer.Argument(
             None, help="experiment TOML file (options below override it; without a file the options describe the run)"),
-        reference: Optional[Path] = typer.Option(None, "--reference", help="reference image (no flow)"),
-        measurement: Optional[Path] = typer.Option(None, "--measurement", help="measurement image (with flow)"),
-        mask: Optional[Path] = typer.Option(None, "--mask", help="mask image, nonzero = no data"),
-        out: Optional[Path] = typer.Option(None, "--out", help="output directory"),
-        name: Optional[str] = typer.Option(None, "--name", help="base name of the output files"),
-        method: Optional[str] = typer.Option(None, "--method", help="displacement estimator (correlation, flow)"),
-        window_px: Optional[int] = typer.Option(None, "--window-px", help="first-pass interrogation window (px)"),
-        final_window_px: Optional[int] = typer.Option(None, "--final-window-px", help="final interrogation window (px)"),
-        passes: Optional[int] = typer.Option(None, "--passes", help="number of correlation passes"),
-        overlap: Optional[float] = typer.Option(None, "--overlap", help="window overlap fraction (0-0.9)"),
-        kind: Optional[str] = typer.Option(None, "--kind", help="reconstruction: planar, axisymmetric or none"),
-        axis_px: Optional[float] = typer.Option(None, "--axis-px", help="symmetry-axis position (px) (axisymmetric)"),
-        width_mm: Optional[float] = typer.Option(None, "--width-mm", help="object width along the line of sight (mm)"),
-        focal_length_mm: Optional[float] = typer.Option(None, "--focal-length-mm", help="lens focal length (mm)"),
-        pixel_pitch_um: Optional[float] = typer.Option(None, "--pixel-pitch-um", "--pixel-um", help="sensor pixel pitch (um)"),
-        f_number: Optional[float] = typer.Option(None, "--f-number", help="lens f-number"),
-        camera_to_object_m: Optional[float] = typer.Option(None, "--camera-to-object-m", help="Z_A (m)"),
-        object_to_background_m: Optional[float] = typer.Option(None, "--object-to-background-m", help="Z_D (m)"),
-        camera_to_background_m: Optional[float] = typer.Option(None, "--camera-to-background-m", help="Z_B (m)"),
-        gas: Optional[str] = typer.Option(None, "--gas", help="gas name (air, co2, he ...)"),
-        temperature_c: Optional[float] = typer.Option(None, "--temperature-c", help="ambient temperature (degC)"),
-        pressure_pa: Optional[float] = typer.Option(None, "--pressure-pa", help="static pressure (Pa)"),
-        no_figures: bool = typer.Option(False, "--no-figures", help="skip the figures"),
+        reference: Optional[Path] = key_option("images.reference", convert=abs_path),
+        measurement: Optional[Path] = key_option("images.measurement", convert=abs_path),
+        mask: Optional[Path] = key_option("images.mask", convert=abs_path),
+        mask_polygon: Optional[list[str]] = key_option(
+            "images.mask_polygons", convert=parse_polygons, metavar="'C,R C,R C,R ...'",
+            help="no-data polygon 'COL,ROW COL,ROW COL,ROW ...' in pixels (repeat for several)"),
+        frame: Optional[int] = key_option("images.frame"),
+        reference_frame: Optional[int] = key_option("images.reference_frame"),
+        measurement_frame: Optional[int] = key_option("images.measurement_frame"),
+        out: Optional[Path] = key_option("output.directory", convert=abs_path),
+        name: Optional[str] = key_option("output.name"),
+        figures: Optional[bool] = key_option("output.figures"),
+        profile: Optional[str] = key_option(
+            "output.profile", convert=parse_profile, metavar="X0,Y0,X1,Y1",
+            help="profile line 'X0,Y0,X1,Y1' in object-plane mm (y down, origin at the image centre)"),
+        method: Optional[choices("processing.method")] = key_option("processing.method"),
+        window_px: Optional[int] = key_option("processing.window_px"),
+        final_window_px: Optional[int] = key_option("processing.final_window_px"),
+        passes: Optional[int] = key_option("processing.passes"),
+        overlap: Optional[float] = key_option("processing.overlap"),
+        camera_motion: Optional[choices("processing.camera_motion")] = key_option("processing.camera_motion"),
+        outlier_threshold: Optional[float] = key_option("processing.outlier_threshold"),
+        outlier_eps_px: Optional[float] = key_option("processing.outlier_eps_px"),
+        kind: Optional[choices("reconstruction.kind")] = key_option("reconstruction.kind"),
+        axis: Optional[choices("reconstruction.axis")] = key_option("reconstruction.axis"),
+        axis_px: Optional[float] = key_option("reconstruction.axis_px"),
+        reference_region: Optional[str] = key_option(
+            "reconstruction.reference_region", convert=parse_region, metavar="NAME|R0,R1,C0,C1",
+            help="where the gas is ambient: edges, left, right, top, bottom or 'ROW0,ROW1,COL0,COL1' in pixels"),
+        boundary: Optional[choices("reconstruction.boundary")] = key_option("reconstruction.boundary"),
+        abel_method: Optional[choices("reconstruction.abel_method")] = key_option("reconstruction.abel_method"),
+        solver: Optional[choices("reconstruction.solver")] = key_option("reconstruction.solver"),
+        weighted: Optional[bool] = key_option("reconstruction.weighted"),
+        object_width_mm: Optional[float] = key_option("geometry.object_width_mm"),
+        focal_length_mm: Optional[float] = key_option("camera.focal_length_mm"),
+        pixel_pitch_um: Optional[float] = key_option("camera.pixel_pitch_um"),
+        f_number: Optional[float] = key_option("camera.f_number"),
+        wavelength_nm: Optional[float] = key_option("camera.wavelength_nm"),
+        camera_to_object_m: Optional[float] = key_option("geometry.camera_to_object_m"),
+        object_to_background_m: Optional[float] = key_option("geometry.object_to_background_m"),
+        camera_to_background_m: Optional[float] = key_option("geometry.camera_to_background_m"),
+        gas: Optional[str] = key_option("medium.gas"),
+        composition: Optional[str] = key_option(
+            "medium.composition", convert=parse_composition, metavar="GAS=FRACTION,...",
+            help="mixture mole fractions 'GAS=FRACTION,...', e.g. he=0.5,air=0.5 (instead of --gas)"),
+        temperature_c: Optional[float] = key_option("medium.temperature_c"),
+        temperature_k: Optional[float] = key_option("medium.temperature_k"),
+        pressure_pa: Optional[float] = key_option("medium.pressure_pa"),
+        humidity_pct: Optional[float] = key_option("medium.relative_humidity"),
+        co2_ppm: Optional[float] = key_option("medium.co2_ppm"),
+        source: Optional[choices("source.kind")] = key_option("source.kind"),
+        illumination: Optional[choices("source.illumination")] = key_option("source.illumination"),
+        frequency_hz: Optional[float] = key_option("source.frequency_hz"),
         as_json: bool = typer.Option(False, "--json", help="print the summary as JSON"),
     ) -> None:
-        """Process one image pair: displacement, deflection, density, temperature -> HDF5 + figures."""
-        from bos.config import load_experiment
+        """Process one image pair: displacement, deflection, density, temperature -> result file + figures."""
+        from bos.config import check_run_settings, load_experiment
         from bos.pipeline import jsonable
 
-        overrides = {
-            "images.reference": _abs(reference),
-            "images.measurement": _abs(measurement),
-            "images.mask": _abs(mask),
-            "output.directory": _abs(out),
-            "output.name": name,
-            "output.figures": False if no_figures else None,
-            "processing.method": method,
-            "processing.window_px": window_px,
-            "processing.final_window_px": final_window_px,
-            "processing.passes": passes,
-            "processing.overlap": overlap,
-            "reconstruction.kind": kind,
-            "reconstruction.axis_px": axis_px,
-            "geometry.object_width_mm": width_mm,
-            "camera.focal_length_mm": focal_length_mm,
-            "camera.pixel_pitch_um": pixel_pitch_um,
-            "camera.f_number": f_number,
-            "geometry.camera_to_object_m": camera_to_object_m,
-            "geometry.object_to_background_m": object_to_background_m,
-            "geometry.camera_to_background_m": camera_to_background_m,
-            "medium.gas": gas,
-            "medium.temperature_c": temperature_c,
-            "medium.pressure_pa": pressure_pa,
-        }
+        overrides = key_overrides(run, locals())
         exp = load_experiment(experiment, overrides=overrides)
+        check_run_settings(exp)  # every missing setting at once, named by option and key
         result, files = run_and_save(exp, quiet=as_json)
         summary = dict(result.summary, cautions=result.attrs.get("cautions", []))
         if as_json:
