@@ -9,4 +9,10 @@ Data flow (no module imports one further up the chain)::
            -> temperature / acoustic pressure -> store / plots
 """
 
-__version__ = "0.1.0"
+from importlib.metadata import PackageNotFoundError as _PackageNotFoundError
+from importlib.metadata import version as _version
+
+try:  # one place for the version: pyproject.toml, read back from the installed metadata
+    __version__ = _version("bos-toolkit")
+except _PackageNotFoundError:  # pragma: no cover - a source tree that was never installed
+    __version__ = "0+unknown"

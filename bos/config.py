@@ -695,3 +695,172 @@ def schema_markdown() -> str:
             lines.append(f"| `{key}` | {opt} | {s.kind} | {default} | {'; '.join(allowed)} | {s.help} |")
         lines.append("")
     return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------
+# Published forms of the schema: JSON Schema (editors) and a commented template
+# ---------------------------------------------------------------------------
+
+_POINT = {"type": "array", "items": {"type": "number"}, "minItems": 2, "maxItems": 2}
+_SPECIAL_JSON: dict[tuple[str, str], dict[str, Any]] = {
+    ("camera", "sensor_px"): {"type": "array", "items": {"type": "integer", "exclusiveMinimum": 0},
+                              "minItems": 2, "maxItems": 2},
+    ("medium", "composition"): {"type": "object", "minProperties": 1,
+                                "additionalProperties": {"type": "number", "minimum": 0, "maximum": 1}},
+    ("images", "mask_polygons"): {"type": "array", "items": {"type": "array", "items": _POINT, "minItems": 3}},
+    ("output", "profile"): {"type": "array", "items": _POINT, "minItems": 2, "maxItems": 2},
+    ("reconstruction", "reference_region"): {
+        "anyOf": [{"type": "string", "enum": list(REFERENCE_REGIONS)},
+                  {"type": "array", "items": {"type": "integer", "minimum": 0}, "minItems": 4, "maxItems": 4}]},
+}
+_JSON_TYPES = {"float": "number", "int": "integer", "str": "string", "bool": "boolean", "path": "string",
+               "list": "array", "table": "object"}
+
+
+def _json_property(section: str, key: str, spec: Spec) -> dict[str, Any]:
+    prop: dict[str, Any] = dict(_SPECIAL_JSON.get((section, key), {}))
+    if not prop and spec.kind in _JSON_TYPES:
+        prop["type"] = _JSON_TYPES[spec.kind]
+    if spec.kind == "path":
+        prop["minLength"] = 1
+    if spec.choices:
+        prop["enum"] = list(spec.choices)
+    if spec.kind in ("float", "int"):
+        if spec.lo is not None:
+            prop["minimum"] = spec.lo
+        if spec.positive and spec.lo is None:
+            prop["exclusiveMinimum"] = 0
+        if spec.hi is not None:
+            prop["maximum"] = spec.hi
+    desc = spec.help
+    opt = option_name(f"{section}.{key}")
+    if opt:
+        desc += f" (command-line option {opt})"
+    prop["description"] = desc
+    if spec.default is not None:
+        prop["default"] = spec.default
+    return prop
+
+
+def schema_json_text() -> str:
+    """:func:`json_schema` as the exact text of the shipped ``bos/data/experiment.schema.json``."""
+    import json
+
+    return json.dumps(json_schema(), indent=2, ensure_ascii=False) + "\n"
+
+
+def json_schema() -> dict[str, Any]:
+    """The experiment-file schema as a JSON Schema (draft 2020-12) document.
+
+    Generated from :data:`SCHEMA`; shipped as ``bos/data/experiment.schema.json``
+    and written by ``bos init --schema`` so editors (e.g. Taplo-based TOML
+    plugins) validate experiment files while they are typed.  Cross-key rules
+    (two of three distances, temperature in C or K) are checked by
+    :func:`load_experiment` only.
+    """
+    props = {}
+    for name, specs in SCHEMA.items():
+        props[name] = {
+            "type": "object",
+            "additionalProperties": False,
+            "properties": {key: _json_property(name, key, spec) for key, spec in specs.items()},
+        }
+    props["medium"]["not"] = {"required": ["temperature_c", "temperature_k"]}
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "title": "bos experiment file",
+        "description": "Experiment description read by `bos run` and `bos plan` (TOML). "
+                       "Units are in the key names.",
+        "type": "object",
+        "additionalProperties": False,
+        "properties": props,
+    }
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, Mapping):
+        return "{" + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + "}"
+    return '"' + str(value).replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+_TEMPLATE_EXAMPLES: dict[tuple[str, str], Any] = {
+    ("camera", "sensor_px"): [4000, 6000],
+    ("camera", "model"): "my camera",
+    ("geometry", "camera_to_background_m"): 1.5,
+    ("medium", "composition"): {"he": 0.5, "air": 0.5},
+    ("medium", "temperature_c"): 20.0,
+    ("medium", "temperature_k"): 293.15,
+    ("source", "frequency_hz"): 40000.0,
+    ("source", "description"): "what, where, how hot",
+    ("plan", "expected_deflection_rad"): 1e-3,
+    ("plan", "target_dt_k"): 1.0,
+    ("plan", "target_spl_db"): 140.0,
+    ("plan", "solve_for"): "z_d",
+    ("plan", "max_blur_mm"): 1.0,
+    ("images", "mask"): "mask.png",
+    ("images", "mask_polygons"): [[[0, 0], [40, 0], [40, 300], [0, 300]]],
+    ("images", "frame"): 0,
+    ("images", "reference_frame"): 0,
+    ("images", "measurement_frame"): 1,
+    ("reconstruction", "axis_px"): 399.5,
+    ("output", "profile"): [[-10.0, 0.0], [10.0, 0.0]],
+}
+
+
+def template_toml(*, header: str = "") -> str:
+    """A commented experiment-file template generated from :data:`SCHEMA`.
+
+    Keys a run needs are written with an example value (edit them); every
+    other key is a comment showing its default or an example.  The template
+    loads with :func:`load_experiment` as it is.
+    """
+    out = [
+        "# bos experiment file (TOML).  Units are in the key names; relative paths are relative to this file.",
+        "# Lines starting with '# key =' show a default or an example: remove the '#' to set them.",
+        "# Every key can also be given on the command line (option named in each comment); options win.",
+        "# JSON Schema for editors: `bos init --schema experiment.schema.json`.",
+    ]
+    if header:
+        out.insert(0, f"# {header}")
+    for name, specs in SCHEMA.items():
+        out += ["", f"[{name}]"]
+        for key, spec in specs.items():
+            notes = [spec.help]
+            if spec.choices:
+                notes.append("one of " + ", ".join(spec.choices))
+            elif spec.kind in ("float", "int") and (spec.positive or spec.lo is not None or spec.hi is not None):
+                notes.append(range_text(spec))
+            opt = option_name(f"{name}.{key}")
+            if opt:
+                notes.append(f"option {opt}" + (" of bos plan" if name == "plan" else ""))
+            out.append("# " + "; ".join(notes))
+            if spec.example is not None:
+                out.append(f"{key} = {_toml_value(spec.example)}")
+            elif spec.default is not None:
+                out.append(f"# {key} = {_toml_value(spec.default)}")
+            else:
+                example = _TEMPLATE_EXAMPLES.get((name, key))
+                out.append(f"# {key} = {_toml_value(example)}" if example is not None else f"# {key} =")
+    return "\n".join(out) + "\n"
+
+
+def dumps_toml(data: Mapping[str, Mapping[str, Any]], *, header: str = "") -> str:
+    """TOML text of an experiment mapping ``{section: {key: value}}`` (file units).
+
+    The mapping is validated first (:func:`experiment_from_dict`), so what is
+    written always loads back.
+    """
+    experiment_from_dict(data)
+    out = [f"# {line}" for line in header.splitlines()]
+    for name, table in data.items():
+        if out:
+            out.append("")
+        out.append(f"[{name}]")
+        out += [f"{key} = {_toml_value(value)}" for key, value in table.items()]
+    return "\n".join(out) + "\n"

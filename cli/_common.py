@@ -31,7 +31,8 @@ def fail(message: str, code: int = EXIT_USER_ERROR) -> "typer.Exit":
 def handle_errors(func: Callable) -> Callable:
     """Decorator for command bodies: turn library errors into one-line messages.
 
-    ``BOSError`` (bad input) and file-system errors exit with code 2;
+    ``BOSError`` (bad input), malformed JSON read from a file and file-system
+    errors exit with code 2;
     anything unexpected exits with code 1 and a one-line summary (set
     ``BOS_DEBUG=1`` to see the traceback).
     """
@@ -46,6 +47,8 @@ def handle_errors(func: Callable) -> Callable:
             raise fail(str(exc)) from None
         except tomllib.TOMLDecodeError as exc:
             raise fail(f"experiment file is not valid TOML: {exc}") from None
+        except json.JSONDecodeError as exc:  # only files we read hold JSON: a damaged or edited input
+            raise fail(f"malformed JSON in an input file ({exc.msg} at line {exc.lineno} column {exc.colno})") from None
         except FileNotFoundError as exc:
             raise fail(f"file not found: {exc.filename or exc}") from None
         except PermissionError as exc:

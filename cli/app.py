@@ -11,11 +11,34 @@ import importlib
 import pkgutil
 
 import typer
+from typer.core import TyperGroup
 
 import cli
 
+
+def _is_usage_error(exc: BaseException) -> bool:
+    # by name: typer vendors its own copy of click, so the class object depends on the typer version
+    return any(c.__name__ == "UsageError" for c in type(exc).__mro__)
+
+
+class _OneLineErrors(TyperGroup):
+    """Command group whose option-parsing errors are one line on stderr (exit 2), like every other error."""
+
+    def invoke(self, ctx):  # noqa: ANN001, ANN201 - signature of the base class
+        try:
+            return super().invoke(ctx)
+        except Exception as exc:  # noqa: BLE001 - re-raised unless it is a usage error
+            if not _is_usage_error(exc):
+                raise
+            where = getattr(getattr(exc, "ctx", None), "command_path", None) or ctx.command_path
+            message = " ".join(str(exc.format_message()).split())
+            typer.echo(f"error: {message} (see '{where} -h')", err=True)
+            raise typer.Exit(2) from None
+
+
 app = typer.Typer(
     name="bos",
+    cls=_OneLineErrors,
     help="Quantitative background-oriented schlieren: plan a rig, process photo pairs, "
     "reconstruct density, temperature and sound pressure.",
     no_args_is_help=True,

@@ -422,7 +422,7 @@ def test_cli_synth_writes_pair_and_truth(tmp_path):
     res = _invoke(["--field", "hot-column", "--rows", "48", "--cols", "96", "--out", str(tmp_path), "--json", "--delta-t-k", "60"])
     assert res.exit_code == 0, res.output
     summary = json.loads(res.stdout)
-    assert summary["shape"] == [48, 96] and len(summary["files"]) == 3
+    assert summary["shape"] == [48, 96] and len(summary["files"]) == 4  # + the experiment file
     ref = iio.imread(tmp_path / "synthetic_reference.png")
     assert ref.dtype == np.uint16 and ref.shape == (48, 96) and 0 < ref.max() <= 4095
     with np.load(tmp_path / "synthetic_truth.npz") as t:
