@@ -69,14 +69,29 @@ def camera_motion_region(exp: Experiment, shape: tuple[int, int]):
 
     ``"none"`` -> None; ``"border"`` -> a band around the image edge;
     ``"mask"`` -> the reconstruction's reference region (where the user says
-    the gas is ambient, hence no flow).
+    the gas is ambient, hence no flow); ``"auto"`` (default) -> the declared
+    reference region for planar objects, the border band otherwise.  In every
+    case the fit keeps only the vectors the data show to be flow-free
+    (:func:`bos.displacement.fit_camera_motion_flow_aware`).
     """
     mode = exp.processing.camera_motion
     if mode == "none":
         return None
-    if mode == "border":
+    if mode == "border" or (mode == "auto" and exp.reconstruction.kind != "planar"):
         return "border"
     return region_box(exp.reconstruction.reference_region, shape)
+
+
+def camera_region_name(exp: Experiment) -> str | None:
+    """Human name of the camera-motion region of ``exp`` (for reports), None if no removal."""
+    mode = exp.processing.camera_motion
+    if mode == "none":
+        return None
+    if mode == "border" or (mode == "auto" and exp.reconstruction.kind != "planar"):
+        return "border band"
+    region = exp.reconstruction.reference_region
+    label = region if isinstance(region, str) else "[" + ", ".join(str(v) for v in region) + "]"
+    return f"reference region {label}"
 
 
 def _grid_index(position_px: float, grid_px: np.ndarray) -> float:

@@ -21,7 +21,8 @@ from .config import Experiment
 from .errors import ConfigError, InputError
 from .provenance import (_medium_dict, _rig_dict, _section_dict, _small_items, cautions, jsonable,
                          summarize)
-from .settings import _grid_index, _dirichlet, camera_motion_region, displacement_options, reference_mask
+from .settings import (_dirichlet, _grid_index, camera_motion_region, camera_region_name, displacement_options,
+                       reference_mask)
 
 #: progress(stage, fraction) with fraction in [0, 1]; called at stage boundaries.
 ProgressFn = Callable[[str, float], None]
@@ -198,6 +199,7 @@ def measure_displacement(inputs: Inputs, exp: Experiment):
     return displacement.estimate(inputs.reference, inputs.measurement, method=exp.processing.method,
                                  mask=inputs.mask,
                                  camera_motion=camera_motion_region(exp, inputs.reference.shape),
+                                 camera_region_name=camera_region_name(exp),
                                  **displacement_options(exp))
 
 
@@ -258,6 +260,29 @@ def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None
 # ---------------------------------------------------------------------------
 # One frame, all stages
 # ---------------------------------------------------------------------------
+
+
+def check_reference_region(disp, exp: Experiment) -> tuple[dict[str, Any], list[str]]:
+    """Check the planar reconstruction's reference region for flow (see
+    :func:`bos.displacement.check_ambient_region`); return a JSON-ready report
+    and the warnings to show."""
+    from .displacement import check_ambient_region
+
+    region = exp.reconstruction.reference_region
+    label = region if isinstance(region, str) else "[" + ", ".join(str(v) for v in region) + "]"
+    grid = reference_mask(region, disp.rows, disp.cols)
+    chk = check_ambient_region(disp, grid, name=f"reference region {label}")
+    report = {"region": label, "vectors": chk.vectors, "signal_fraction": chk.signal_fraction,
+              "gradient_sigma": chk.gradient_sigma, "sides_with_signal": chk.sides_with_signal,
+              "ambient": chk.ambient}
+    if chk.ambient:
+        return jsonable(report), []
+    where = f" ({', '.join(chk.sides_with_signal)})" if chk.sides_with_signal else ""
+    msg = (f"reference region '{label}' is NOT ambient: {100 * chk.signal_fraction:.0f} % of its vectors{where} carry "
+           f"a displacement signal beyond the noise (gradient {chk.gradient_sigma:.0f} sigma); the density and "
+           "temperature are relative to gas that is not at ambient state: choose a flow-free "
+           "reconstruction.reference_region (left, right, top, bottom or a [row0, row1, col0, col1] box)")
+    return jsonable(report), [msg]
 
 
 def inputs_from_arrays(reference: np.ndarray, measurement: np.ndarray, *, mask: np.ndarray | None = None,
@@ -326,9 +351,19 @@ def process_inputs(inputs: Inputs, exp: Experiment, *, progress: ProgressFn | No
     _tick(progress, "reconstruction", 1.0)
     warnings = list(inputs.warnings) + list(exif_notes or [])
     warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]
+    warnings += [str(w) for w in ((getattr(disp, "params", None) or {}).get("warnings") or [])]
     warnings += [str(w) for w in (getattr(dens, "warnings", None) or [])]
+    region_report = None
+    if dens is not None and exp.reconstruction.kind == "planar":
+        region_report, region_warning = check_reference_region(disp, exp)
+        warnings += region_warning
     warnings = _unique(warnings)
     summary = summarize(disp, dens, medium=medium, warnings=warnings)
+    fit = (getattr(disp, "params", None) or {}).get("camera_motion_fit")
+    if fit is not None:
+        summary["camera_motion"] = jsonable(fit)
+    if region_report is not None:
+        summary["reference_region"] = region_report
     acoustic = None
     if dens is not None and exp.source.kind == "ultrasound":
         from .acoustics import acoustic_field

@@ -14,7 +14,8 @@ from ..errors import InputError
 from .correlation import correlate
 from .field import DisplacementField
 from .flow import optical_flow
-from .motion import camera_region, coarse_camera_shift, fit_camera_motion, remove_camera_motion
+from .motion import (CameraFitReport, RegionCheck, camera_region, check_ambient_region, coarse_camera_shift, fit_camera_motion,
+                     fit_camera_motion_flow_aware, remove_camera_motion)
 from .validation import normalized_median_test, replace_invalid
 
 METHODS = {
@@ -33,12 +34,17 @@ __all__ = [
     "camera_region",
     "coarse_camera_shift",
     "fit_camera_motion",
+    "fit_camera_motion_flow_aware",
+    "CameraFitReport",
+    "RegionCheck",
+    "check_ambient_region",
     "remove_camera_motion",
 ]
 
 
 def estimate(reference, measurement, *, method: str = "correlation", mask=None, camera_motion=None,
-             camera_model: str = "shift", border_px: int | None = None, **options) -> DisplacementField:
+             camera_model: str = "shift", border_px: int | None = None, camera_region_name: str | None = None,
+             **options) -> DisplacementField:
     """Measure the apparent background displacement between two images.
 
     Parameters
@@ -60,11 +66,17 @@ def estimate(reference, measurement, *, method: str = "correlation", mask=None, 
         (:func:`coarse_camera_shift`) seeds the estimator as its first
         predictor (unless ``initial`` is given), so shifts far beyond a
         window are followed; after it, a shift or affine motion is fitted to
-        the vectors in the region and subtracted.
+        the vectors of the region that the data show carry no flow
+        (:func:`fit_camera_motion_flow_aware`: flow crossing the region, a
+        plume leaving through the border, is found and left out) and
+        subtracted.  The fit report is in ``params["camera_motion_fit"]``
+        and its warnings in ``params["warnings"]``.
     camera_model : {"shift", "affine"}
         Model of the camera motion fitted in that region.
     border_px : int, optional
         Width of the border band [px] (default: 1/8 of the smaller side).
+    camera_region_name : str, optional
+        How to name the camera-motion region in reports and warnings.
     **options
         Passed to the estimator (see :func:`correlate`, :func:`optical_flow`).
 
@@ -86,7 +98,14 @@ def estimate(reference, measurement, *, method: str = "correlation", mask=None, 
         if coarse != (0.0, 0.0):
             options["initial"] = coarse
     result = METHODS[method](reference, measurement, mask=mask, **options)
-    motion = fit_camera_motion(result, region, model=camera_model)
+    name = camera_region_name or ("border band" if isinstance(camera_motion, str) else "camera-motion region")
+    motion, report = fit_camera_motion_flow_aware(result, region, model=camera_model, description=name)
     out = remove_camera_motion(result, motion)
     out.params["camera_coarse_shift"] = coarse
+    out.params["camera_motion_fit"] = {
+        "region": report.region, "candidate_vectors": report.candidate_vectors,
+        "used_vectors": report.used_vectors, "excluded_fraction": report.excluded_fraction,
+        "residual_rms_px": list(report.residual_rms_px), "side_shifts_px": report.side_shifts_px,
+        "consistent": report.consistent}
+    out.params["warnings"] = list(out.params.get("warnings", [])) + list(report.warnings)
     return out

@@ -172,3 +172,348 @@ def remove_camera_motion(field: DisplacementField, motion: CameraMotion) -> Disp
     return dataclasses.replace(
         field, dy=field.dy - my, dx=field.dx - mx, camera_shift=motion.shift, params=params
     )
+
+
+# ---------------------------------------------------------------------------
+# Flow-aware camera motion ("auto")
+# ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CameraFitReport:
+    """How the camera motion was found (for the summary and the result file).
+
+    Attributes
+    ----------
+    region : str
+        Description of the candidate region.
+    candidate_vectors, used_vectors : int
+        Valid vectors in the candidate region, and those kept as flow-free.
+    excluded_fraction : float
+        Fraction of the candidate vectors rejected as carrying flow.
+    residual_rms_px : (float, float)
+        rms (dy, dx) of the kept vectors about the fitted motion [px].
+    noise_px : float
+        Per-vector noise used for the flow test [px].
+    side_shifts_px : dict
+        Shift fitted on each side of the region that holds enough vectors.
+    consistent : bool
+        False when the kept vectors do not look like one rigid motion.
+    warnings : list of str
+    """
+
+    region: str
+    candidate_vectors: int
+    used_vectors: int
+    excluded_fraction: float
+    residual_rms_px: tuple[float, float]
+    noise_px: float
+    side_shifts_px: dict
+    consistent: bool
+    warnings: list
+
+
+def _nan_box_mean(values: np.ndarray, weight: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Mean of ``values`` over a size x size box using only points with weight 1; and the count."""
+    from scipy.ndimage import uniform_filter
+
+    v = np.where(weight, values, 0.0)
+    w = weight.astype(float)
+    s = uniform_filter(v, size=size, mode="constant")
+    n = uniform_filter(w, size=size, mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return s / n, n * size * size
+
+
+OVERLAP_NOISE_FACTOR = 2.0
+
+
+def flow_flags(dy: np.ndarray, dx: np.ndarray, region: np.ndarray, *, sigma: tuple[float, float],
+               sizes: tuple[int, ...] = (3, 7, 15), threshold: float = 4.0) -> np.ndarray:
+    """Vectors of ``region`` whose neighbourhood carries a coherent signal beyond the noise.
+
+    For each box size the mean of the residual (dy, dx) over the region's
+    vectors in the box is compared with the noise of such a mean,
+    ``2 sigma / sqrt(n)`` (the factor 2 for the correlation of overlapping
+    windows); vectors within half a box of a significant mean are flagged.
+
+    Parameters
+    ----------
+    dy, dx : ndarray
+        Residual displacement [px] on the vector grid (expected zero where no flow).
+    region : ndarray of bool
+        Grid points to test (valid vectors only).
+    sigma : (float, float)
+        Per-vector 1-sigma noise of dy and dx [px].
+    sizes : tuple of int
+        Box sizes [vectors].
+    threshold : float
+        Significance in units of the box-mean noise.
+    """
+    from scipy.ndimage import binary_dilation
+
+    flags = np.zeros_like(region)
+    for size in sizes:
+        for r, s_c in ((dy, sigma[0]), (dx, sigma[1])):
+            mean, count = _nan_box_mean(np.where(region, r, 0.0), region, size)
+            noise_box = OVERLAP_NOISE_FACTOR * s_c / np.sqrt(np.maximum(count, 1.0))
+            flag = region & (count >= 3) & (np.abs(mean) > threshold * noise_box)
+            flags |= binary_dilation(flag, iterations=max(1, size // 2)) & region
+    return flags
+
+
+def component_noise(field: DisplacementField, where: np.ndarray) -> tuple[float, float]:
+    """Median per-vector 1-sigma of (dy, dx) over ``where`` [px] (floor 1e-4 px)."""
+    out = []
+    for s_c in (field.sigma_dy, field.sigma_dx):
+        v = np.asarray(s_c, float)[where]
+        v = v[np.isfinite(v)]
+        out.append(max(float(np.median(v)) if v.size else 0.01, 1e-4))
+    return out[0], out[1]
+
+
+def half_sample_mode(values: np.ndarray) -> float:
+    """Robust mode of a sample: the half-sample mode.
+
+    Repeatedly keeps the half of the sorted sample with the smallest range
+    until two or three values remain and returns their mean.  Unlike the
+    median it is not pulled by a one-sided tail (vectors carrying flow).
+
+    References
+    ----------
+    Bickel, D. R. and Fruehwirth, R. (2006). On a fast, robust estimator of
+    the mode: comparisons to other robust estimators with applications.
+    Computational Statistics & Data Analysis 50, 3500-3530.
+    """
+    v = np.sort(np.asarray(values, float)[np.isfinite(values)])
+    if v.size == 0:
+        return float("nan")
+    while v.size > 3:
+        h = (v.size + 1) // 2
+        widths = v[h - 1:] - v[:v.size - h + 1]
+        i = int(np.argmin(widths))
+        v = v[i:i + h]
+    if v.size == 3:  # the closer pair
+        return float(v[:2].mean() if v[1] - v[0] < v[2] - v[1] else (v[1:].mean() if v[2] - v[1] < v[1] - v[0]
+                                                                         else v[1]))
+    return float(v.mean())
+
+
+def _fit(y, x, dy, dx, centre, model):
+    if model == "shift":
+        return CameraMotion((float(dy.mean()), float(dx.mean())), np.zeros((2, 2)), centre, int(dy.size))
+    design = np.column_stack([np.ones_like(y), y - centre[0], x - centre[1]])
+    cy, *_ = np.linalg.lstsq(design, dy, rcond=None)
+    cx, *_ = np.linalg.lstsq(design, dx, rcond=None)
+    return CameraMotion((float(cy[0]), float(cx[0])), np.array([[cy[1], cy[2]], [cx[1], cx[2]]]), centre,
+                        int(dy.size))
+
+
+def fit_camera_motion_flow_aware(field: DisplacementField, region: np.ndarray, *, model: str = "shift",
+                                 description: str = "candidate region", threshold: float = 4.0,
+                                 max_iter: int = 8) -> tuple[CameraMotion, CameraFitReport]:
+    """Fit camera motion only to vectors that the data show carry no flow.
+
+    The candidate region (e.g. the border band, or the declared ambient
+    region) may be crossed by the flow (a plume leaving through the top of
+    the picture, a boundary layer running along the whole plate).  A flow
+    signal is spatially coherent, camera noise is not: the residual about
+    the current motion estimate is averaged over boxes of 5 x 5 and 11 x 11
+    vectors (candidate vectors only), and a vector is rejected when either
+    box mean exceeds ``threshold`` times its own noise (the noise of a box
+    mean, calibrated on the box means of the kept vectors, so the
+    correlation of overlapping windows is accounted for).  Rejections are
+    dilated by the box half-width (flow tails), the motion is refitted to
+    the rest and the test repeated until the kept set no longer changes.
+
+    Parameters
+    ----------
+    field : DisplacementField
+        Displacement including the camera motion.
+    region : ndarray of bool, image shape
+        Candidate flow-free region.
+    model : {"shift", "affine"}
+    description : str
+        Name of the region for the report.
+    threshold : float
+        Rejection threshold in units of the box-mean noise (4, common practice
+        for a low false-rejection rate).
+    max_iter : int
+
+    Returns
+    -------
+    (CameraMotion, CameraFitReport)
+
+    Raises
+    ------
+    InputError
+        Too few usable vectors in the candidate region.
+    """
+    if model not in ("shift", "affine"):
+        raise InputError(f"camera_model must be 'shift' or 'affine', got {model!r}")
+    ri = np.clip(np.rint(field.rows).astype(int), 0, region.shape[0] - 1)
+    ci = np.clip(np.rint(field.cols).astype(int), 0, region.shape[1] - 1)
+    cand = region[np.ix_(ri, ci)] & field.valid & np.isfinite(field.dy) & np.isfinite(field.dx)
+    need = 3 if model == "shift" else 6
+    n_cand = int(cand.sum())
+    if n_cand < need:
+        raise InputError(f"camera-motion region ({description}) holds only {n_cand} usable vectors "
+                         f"(need {need}); widen the region or set processing.camera_motion")
+    yy, xx = np.meshgrid(field.rows, field.cols, indexing="ij")
+    centre = ((region.shape[0] - 1) / 2.0, (region.shape[1] - 1) / 2.0)
+    # per-vector noise of each component: the estimator's own 1-sigma (median over the region);
+    # box means of n vectors of windows overlapping by 50 % have ~2x the independent-noise
+    # spread sigma/sqrt(n) (neighbour correlation; common practice, measured here ~1.5-2)
+    sig = component_noise(field, cand)
+    overlap_factor = OVERLAP_NOISE_FACTOR
+    # first guess: the robust mode of 3x3 box means (flow is a one-sided tail, ambient a tight peak)
+    keep = cand.copy()
+    for comp, s_c in zip((field.dy, field.dx), sig):
+        box, count = _nan_box_mean(np.where(cand, comp, 0.0), cand, 3)
+        mode = half_sample_mode(box[cand & (count >= 3)]) if (cand & (count >= 3)).sum() >= 8 else np.median(comp[cand])
+        keep &= np.abs(comp - mode) <= 3 * s_c
+    if keep.sum() < need:
+        keep = cand.copy()
+    warnings: list[str] = []
+    motion = _fit(yy[keep], xx[keep], field.dy[keep], field.dx[keep], centre, model)
+    # box sizes grow over the iterations: small boxes first (robust to a biased start), then
+    # larger ones (sensitive to weak, wide flow tails)
+    schedule = [(3,), (3, 7)] + [(3, 7, 15)] * max(1, max_iter - 2)
+    for it, sizes in enumerate(schedule):
+        my, mx = motion.at(field.rows, field.cols)
+        reject = flow_flags(field.dy - my, field.dx - mx, cand, sigma=sig, sizes=sizes, threshold=threshold)
+        new_keep = cand & ~reject
+        if new_keep.sum() < max(need, 0.05 * n_cand):
+            warnings.append(f"camera motion: the flow covers nearly all of the {description} "
+                            f"({int(new_keep.sum())} of {n_cand} vectors look flow-free); the fitted camera "
+                            "motion may contain flow: set processing.camera_motion = \"none\" if the camera "
+                            "did not move, or give a flow-free reconstruction.reference_region")
+            break
+        changed = not np.array_equal(new_keep, keep)
+        keep = new_keep
+        motion = _fit(yy[keep], xx[keep], field.dy[keep], field.dx[keep], centre, model)
+        if not changed and it >= 2:
+            break
+    my, mx = motion.at(field.rows, field.cols)
+    ry, rx = (field.dy - my)[keep], (field.dx - mx)[keep]
+    rms = (float(np.sqrt(np.mean(ry ** 2))), float(np.sqrt(np.mean(rx ** 2))))
+    # consistency with one rigid motion: shifts fitted on each side of the kept set must agree
+    sides = {"top": yy < centre[0] - region.shape[0] / 4, "bottom": yy > centre[0] + region.shape[0] / 4,
+             "left": xx < centre[1] - region.shape[1] / 4, "right": xx > centre[1] + region.shape[1] / 4}
+    side_shifts = {}
+    for name, where in sides.items():
+        k = keep & where
+        if k.sum() >= 12:
+            side_shifts[name] = (float(np.mean(field.dy[k] - my[k])), float(np.mean(field.dx[k] - mx[k])),
+                                 int(k.sum()))
+    consistent = True
+    noise = float(max(sig))
+    names = list(side_shifts)
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            sa, sb = side_shifts[a], side_shifts[b]
+            se = overlap_factor * np.sqrt(1 / sa[2] + 1 / sb[2])
+            z = max(abs(sa[0] - sb[0]) / (se * sig[0]), abs(sa[1] - sb[1]) / (se * sig[1]))
+            if consistent and z > threshold:
+                consistent = False
+                diff = max(abs(sa[0] - sb[0]), abs(sa[1] - sb[1]))
+                warnings.append(f"camera motion: the flow-free vectors are not consistent with one rigid "
+                                f"{'shift' if model == 'shift' else 'motion'} ({a} and {b} parts of the "
+                                f"{description} differ by {diff:.4f} px, {z:.0f} sigma): flow may reach that "
+                                "region, or the camera rotated/zoomed (processing.camera_model = \"affine\")")
+    if model == "shift" and keep.sum() >= 12:
+        # a displacement gradient across the kept vectors: a flow tail reaching the region
+        # (or a rotation/zoom of the camera), which the fitted shift then partly contains
+        residual = dataclasses.replace(field, dy=field.dy - my, dx=field.dx - mx)
+        grad = check_ambient_region(residual, keep, name=description, threshold=threshold)
+        if grad.gradient_sigma > 2 * threshold:
+            consistent = False
+            warnings.append(f"camera motion: the displacement varies across the flow-free part of the {description} "
+                            f"(gradient {grad.gradient_sigma:.0f} sigma): a weak flow tail may reach it, and the "
+                            f"removed shift ({motion.shift[0]:+.4f}, {motion.shift[1]:+.4f}) px may contain flow; "
+                            "if the camera did not move set processing.camera_motion = \"none\", otherwise choose "
+                            "a region farther from the flow (or processing.camera_model = \"affine\" if the "
+                            "camera rotated or zoomed)")
+    report = CameraFitReport(region=description, candidate_vectors=n_cand, used_vectors=int(keep.sum()),
+                             excluded_fraction=float(1 - keep.sum() / n_cand), residual_rms_px=rms,
+                             noise_px=noise,
+                             side_shifts_px={k: [v[0], v[1]] for k, v in side_shifts.items()},
+                             consistent=consistent, warnings=warnings)
+    return motion, report
+
+
+@dataclass(frozen=True)
+class RegionCheck:
+    """Is a declared ambient (reference) region free of flow?
+
+    Attributes
+    ----------
+    name : str
+    vectors : int
+        Valid vectors in the region.
+    signal_fraction : float
+        Fraction of them in a neighbourhood with a significant coherent signal.
+    gradient_sigma : float
+        Significance [sigma] of a displacement gradient across the region.
+    sides_with_signal : list of str
+        Parts of the region (top/bottom/left/right) that carry the signal.
+    ambient : bool
+        False when the region looks like it carries flow.
+    """
+
+    name: str
+    vectors: int
+    signal_fraction: float
+    gradient_sigma: float
+    sides_with_signal: list
+    ambient: bool
+
+
+def check_ambient_region(field: DisplacementField, region_grid: np.ndarray, *, name: str = "reference region",
+                         threshold: float = 4.0, max_signal_fraction: float = 0.1) -> RegionCheck:
+    """Check that a region declared ambient carries no displacement signal beyond its noise.
+
+    The displacement (after camera-motion removal) of the region's valid
+    vectors is tested for coherent signal with :func:`flow_flags` (box means
+    against their noise) and for a gradient across the region (least-squares
+    plane, slope significance).  Flow in a region used as the integration
+    reference shifts every reconstructed value.
+
+    Parameters
+    ----------
+    field : DisplacementField
+    region_grid : ndarray of bool, grid shape
+        Grid points of the region.
+    name : str
+    threshold : float
+        Significance [sigma].
+    max_signal_fraction : float
+        Largest fraction of flagged vectors still called ambient.
+    """
+    region = np.asarray(region_grid, bool) & field.valid & np.isfinite(field.dy) & np.isfinite(field.dx)
+    n = int(region.sum())
+    if n < 3:
+        return RegionCheck(name, n, float("nan"), float("nan"), [], True)
+    sig = component_noise(field, region)
+    flags = flow_flags(field.dy, field.dx, region, sigma=sig, sizes=(3, 7), threshold=threshold)
+    frac = float(flags.sum() / n)
+    yy, xx = np.meshgrid(field.rows, field.cols, indexing="ij")
+    y, x = yy[region], xx[region]
+    grad_z = 0.0
+    if n >= 12 and (np.ptp(y) > 0 or np.ptp(x) > 0):
+        cols = [np.ones(n)] + [v - v.mean() for v in (y, x) if np.ptp(v) > 0]
+        design = np.column_stack(cols)
+        cov = np.linalg.pinv(design.T @ design)
+        for comp, s_c in ((field.dy, sig[0]), (field.dx, sig[1])):
+            coef, *_ = np.linalg.lstsq(design, comp[region], rcond=None)
+            for k in range(1, design.shape[1]):
+                se = OVERLAP_NOISE_FACTOR * s_c * np.sqrt(cov[k, k])
+                grad_z = max(grad_z, abs(coef[k]) / se)
+    rows_c, cols_c = np.mean(field.rows), np.mean(field.cols)
+    h, w = np.ptp(field.rows) or 1.0, np.ptp(field.cols) or 1.0
+    sides = {"top": yy < rows_c - h / 4, "bottom": yy > rows_c + h / 4,
+             "left": xx < cols_c - w / 4, "right": xx > cols_c + w / 4}
+    with_signal = [s for s, where in sides.items()
+                   if (region & where).sum() >= 3 and (flags & where).sum() > max_signal_fraction * (region & where).sum()]
+    ambient = frac <= max_signal_fraction and grad_z <= 2 * threshold
+    return RegionCheck(name, n, frac, float(grad_z), with_signal, bool(ambient))
