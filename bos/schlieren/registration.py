@@ -146,14 +146,20 @@ def similarity_from_points(src_px, dst_px) -> tuple[Similarity, np.ndarray]:
 # --------------------------------------------------------------------------- masked NCC (Padfield 2012)
 
 
-def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0.25):
+#: Automatic registration needs at least this correlation between the fields in the coarse search.
+MIN_CORRELATION = 0.5
+
+
+def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0.25, cache: dict | None = None):
     """Normalised cross-correlation of two masked pictures for every integer shift.
 
     Returns an array ``ncc`` of shape ``(H_f + H_m - 1, W_f + W_m - 1)``; the
     entry at index ``(i, j)`` compares ``fixed[y, x]`` with
     ``moving[y - dy, x - dx]`` for the shift ``(dy, dx) = (i - H_m + 1, j - W_m + 1)``.
     Shifts whose overlap has fewer than ``min_overlap`` of the smaller
-    picture's valid pixels are set to -inf.
+    picture's valid pixels are set to -inf.  ``cache`` (a dict owned by the
+    caller) keeps the fixed picture's spectra between calls with the same
+    fixed picture and mask.
 
     References
     ----------
@@ -176,7 +182,12 @@ def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0
 
     # correlation = convolution with the flipped moving picture
     Fm, Fmm, Fm2 = F(m[::-1, ::-1]), F(mm[::-1, ::-1]), F((m * m)[::-1, ::-1])
-    Ff, Fmf, Ff2 = F(f), F(mf), F(f * f)
+    key = tuple(fshape)
+    if cache is None or key not in cache:
+        spectra = (F(f), F(mf), F(f * f))
+        if cache is not None:  # the caller searches with one fixed picture: reuse its transforms
+            cache[key] = spectra
+    Ff, Fmf, Ff2 = cache[key] if cache is not None else spectra
     n = corr(Fmf, Fmm)
     sf = corr(Ff, Fmm)
     sm = corr(Fmf, Fm)
@@ -369,6 +380,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
     bos_c = ((bos.rows[0] + bos.rows[-1]) / 2, (bos.cols[0] + bos.cols[-1]) / 2)
     angles = np.radians(np.arange(-max_rotation_deg, max_rotation_deg, angle_step_deg))
     best = (-np.inf, None)
+    spectra: dict = {}
     for k in scales:
         half = 0.5 * k * bos_extent * math.sqrt(2.0) + step_k
         n_c = int(math.ceil(2 * half / step_k)) + 1
@@ -383,7 +395,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
             cmask = np.isfinite(canvas)
             if cmask.sum() < 16:
                 continue
-            ncc = masked_ncc(kwork, kmask, np.where(cmask, canvas, 0.0), cmask)
+            ncc = masked_ncc(kwork, kmask, np.where(cmask, canvas, 0.0), cmask, min_overlap=0.3, cache=spectra)
             i = int(np.argmax(ncc))
             val = float(ncc.flat[i])
             if val > best[0]:
@@ -393,7 +405,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
                 centre_r = kr[0] + (dy + (n_c - 1) / 2) * step_k
                 centre_c = kc[0] + (dx + (n_c - 1) / 2) * step_k
                 best = (val, (k, th, centre_r, centre_c))
-    if best[1] is None or best[0] < 0.3:
+    if best[1] is None or best[0] < MIN_CORRELATION:
         raise InputError("automatic registration found no common structure (best correlation "
                          f"{best[0]:.2f}); give control points with --control-points")
     k, th, cr, cc = best[1]
@@ -404,7 +416,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
     params = np.array([math.log(k), th, tx, ty])
 
     # ---- refinement of the four parameters on a finer grid
-    step_f = max(1.0, min(step_k / 2.0, max(H, W) / 192.0))
+    step_f = max(1.0, min(step_k / 2.0, max(H, W) / 128.0))
     sm_f = max(step_f, k * max(bos.step)) / 2.0
     kf = _smooth_nan(np.where(kvalid, knife, np.nan), sm_f)
     fr = np.arange(0, H, step_f)
