@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import enum
 import functools
 import inspect
 import json
@@ -11,7 +12,7 @@ import re
 import sys
 import tomllib
 from pathlib import Path
-from typing import Any, Callable, Literal, Optional
+from typing import Any, Callable, Optional
 
 import typer
 
@@ -134,12 +135,31 @@ def key_option(dotted: str, *, default: Any = None, convert: Callable[[Any], Any
     return info
 
 
-def choices(dotted: str) -> Any:
-    """``Literal[...]`` of the allowed values of a key: a choice type shown in ``--help``."""
+_CHOICE_TYPES: dict[tuple[str, tuple[str, ...]], type[enum.Enum]] = {}
+
+
+def choice_type(name: str, values: tuple[str, ...]) -> type[enum.Enum]:
+    """A ``str`` Enum of ``values``: typer turns it into a choice type shown in ``--help``.
+
+    (An Enum rather than ``Literal``: every supported typer version accepts it.)
+    """
+    key = (name, tuple(values))
+    if key not in _CHOICE_TYPES:
+        _CHOICE_TYPES[key] = enum.Enum(name, {v: v for v in values}, type=str)
+    return _CHOICE_TYPES[key]
+
+
+def choices(dotted: str) -> type[enum.Enum]:
+    """The choice type of the allowed values of the experiment key ``section.key``."""
     from bos.config import SCHEMA
 
     section, key = dotted.split(".", 1)
-    return Literal[tuple(SCHEMA[section][key].choices)]
+    return choice_type("".join(w.title() for w in f"{section}_{key}".split("_")), SCHEMA[section][key].choices)
+
+
+def plain(value: Any) -> Any:
+    """The plain value of a choice option (Enum member -> its string)."""
+    return value.value if isinstance(value, enum.Enum) else value
 
 
 def key_overrides(func: Callable, values: dict[str, Any]) -> dict[str, Any]:
@@ -153,7 +173,7 @@ def key_overrides(func: Callable, values: dict[str, Any]) -> dict[str, Any]:
         key = getattr(param.default, "bos_key", None)
         if key is None or values.get(pname) is None:
             continue
-        value = values[pname]
+        value = plain(values[pname])
         conv = param.default.bos_convert
         out[key] = conv(value) if conv is not None else value
     return out
@@ -220,6 +240,8 @@ def strict_json(obj: Any) -> Any:
         import numpy as np
     except ImportError:  # pragma: no cover
         np = None
+    if isinstance(obj, enum.Enum):
+        obj = obj.value
     if np is not None and isinstance(obj, np.ndarray):
         obj = obj.tolist()
     elif np is not None and isinstance(obj, np.generic):

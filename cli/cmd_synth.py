@@ -9,12 +9,12 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
-from typing import Any, Literal, Optional
+from typing import Any, Optional
 
 import numpy as np
 import typer
 
-from cli._common import emit_json, handle_errors, key_option, key_overrides
+from cli._common import choice_type, emit_json, handle_errors, key_option, key_overrides, plain
 
 FIELDS = ("uniform", "gaussian-blob", "hot-column", "planar-layer")
 FORMATS = ("png", "tiff")
@@ -136,7 +136,7 @@ def register(app: typer.Typer) -> None:
     @app.command("synth", epilog=SYNTH_EPILOG)
     @handle_errors
     def synth(
-        field: Literal[FIELDS] = typer.Option("gaussian-blob", "--field", help="known field"),
+        field: choice_type("Field", FIELDS) = typer.Option("gaussian-blob", "--field", help="known field"),
         out: Path = typer.Option(Path("."), "--out", help="output directory (must exist)"),
         name: str = typer.Option("synthetic", "--name", help="base name of the output files"),
         rows: int = typer.Option(1024, "--rows", help="image height [px]"),
@@ -154,7 +154,7 @@ def register(app: typer.Typer) -> None:
         blur_px: float = typer.Option(0.0, "--blur-px", help="Gaussian blur spot e^-2 diameter [px]"),
         shift_y_px: float = typer.Option(0.0, "--camera-shift-y-px", help="global camera shift, y (down) [px]"),
         shift_x_px: float = typer.Option(0.0, "--camera-shift-x-px", help="global camera shift, x [px]"),
-        fmt: Literal[FORMATS] = typer.Option("png", "--format", help="image format (16-bit)"),
+        fmt: choice_type("ImageFormat", FORMATS) = typer.Option("png", "--format", help="image format (16-bit)"),
         dy_px: float = typer.Option(0.0, "--dy-px", help="uniform field: displacement y [px]"),
         dx_px: float = typer.Option(0.5, "--dx-px", help="uniform field: displacement x [px]"),
         amplitude: float = typer.Option(-5e-5, "--amplitude", help="blob/layer: index excess n - n0 at the centre"),
@@ -181,6 +181,7 @@ def register(app: typer.Typer) -> None:
         from bos.errors import DataFileError, InputError
         from bos.optics import Rig
 
+        field, fmt = plain(field), plain(fmt)
         if old_density is not None:
             typer.echo("warning: --density is deprecated (it is the dot fill fraction, not gas density); "
                        "use --dot-fill", err=True)
