@@ -16,13 +16,14 @@ sigma_T = T sigma_rho / rho (first order; T ~ 1/rho at fixed pressure).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Callable
 
 import numpy as np
 
 from ..errors import InputError
 from .abel import abel_invert_field
 from .deflection import planar_index_gradient
-from .poisson import integrate_gradient, integrate_gradient_uncertainty
+from .poisson import integrate_gradient, integrate_gradient_with_uncertainty
 
 
 @dataclass
@@ -117,7 +118,8 @@ def planar_density(eps_y, eps_x, *, spacing_m, width_m: float, medium, reference
                    reference_temperature_k: float | None = None, masked=None, invalid=None,
                    sigma_y=None, sigma_x=None, weighted: bool = True, dirichlet: dict | None = None,
                    method: str = "auto", ray_slopes=None, y_m=None, x_m=None,
-                   n_samples: int = 32, seed: int = 0) -> DensityField:
+                   n_samples: int = 32, seed: int = 0,
+                   progress: Callable[[float], None] | None = None) -> DensityField:
     """Density and temperature of a planar (spanwise uniform) object of known width.
 
     Parameters
@@ -152,6 +154,12 @@ def planar_density(eps_y, eps_x, *, spacing_m, width_m: float, medium, reference
         to correct the oblique chords (finite camera distance).
     y_m, x_m : 1-D ndarray, optional
         Coordinates stored with the result.
+    n_samples, seed : int
+        Monte Carlo samples of the uncertainty and their random seed (see
+        :func:`~bos.reconstruct.poisson.integrate_gradient_uncertainty`).
+    progress : callable, optional
+        ``progress(fraction)`` with the fraction of the work done (0..1),
+        called after the main solve and after each Monte Carlo sample.
 
     Returns
     -------
@@ -177,13 +185,16 @@ def planar_density(eps_y, eps_x, *, spacing_m, width_m: float, medium, reference
         weights = (1.0 / np.maximum(sgy, floor) ** 2, 1.0 / np.maximum(sgx, floor) ** 2)
     options = dict(spacing_m=spacing_m, mask=masked, invalid=invalid, weights=weights,
                    dirichlet=dirichlet, reference_region=reference_region, method=method)
-    n = integrate_gradient(gy, gx, reference_value=n_ref, **options)
     if has_sigma:
-        sigma_n = integrate_gradient_uncertainty(gy, gx, sigma_y=sgy, sigma_x=sgx, n_samples=n_samples,
-                                                 seed=seed, **options)
+        n, sigma_n, solver = integrate_gradient_with_uncertainty(
+            gy, gx, sigma_y=sgy, sigma_x=sgx, reference_value=n_ref, n_samples=n_samples, seed=seed,
+            progress=progress, **options)
     else:
-        sigma_n = np.zeros(ey.shape)
-    info = {"method": method, "width_m": float(width_m), "reference_index": n_ref, "weighted": weights is not None,
+        n = integrate_gradient(gy, gx, reference_value=n_ref, **options)
+        sigma_n, solver = np.zeros(ey.shape), method
+    if progress is not None:
+        progress(1.0)
+    info = {"method": method, "solver": solver, "width_m": float(width_m), "reference_index": n_ref, "weighted": weights is not None,
             "obliquity_corrected": ray_slopes is not None, "n_samples": n_samples if has_sigma else 0}
     return _finish(n, sigma_n, medium, masked, invalid, y_m, x_m, "planar", info)
 
@@ -192,7 +203,7 @@ def axisymmetric_density(eps_y, eps_x, *, spacing_m: float, medium, axis: str = 
                          axis_position: float | None = None, method: str = "three_point",
                          regularization: float = 0.0, reference_temperature_k: float | None = None,
                          masked=None, invalid=None, sigma_y=None, sigma_x=None,
-                         y_m=None, x_m=None) -> DensityField:
+                         y_m=None, x_m=None, progress: Callable[[float], None] | None = None) -> DensityField:
     """Density and temperature of an axisymmetric object by Abel inversion of the deflection.
 
     Each line normal to the axis is inverted on its own, left and right
@@ -219,6 +230,8 @@ def axisymmetric_density(eps_y, eps_x, *, spacing_m: float, medium, axis: str = 
         Tikhonov parameter for noisy data (0 = none).
     sigma_y, sigma_x : ndarray, optional
         1-sigma deflection uncertainty [rad], propagated exactly.
+    progress : callable, optional
+        ``progress(fraction)`` with the fraction of the work done (0..1).
 
     Returns
     -------
@@ -236,8 +249,12 @@ def axisymmetric_density(eps_y, eps_x, *, spacing_m: float, medium, axis: str = 
     flags = (masked | invalid) if vertical else (masked | invalid).T
     radial = np.where(flags, np.nan, radial)
     n_ref = _reference_index(medium, reference_temperature_k)
+    if progress is not None:
+        progress(0.0)
     res = abel_invert_field(radial, spacing_m=spacing_m, axis_position=axis_position, method=method,
                             regularization=regularization, n0=n_ref, sigma=sig)
+    if progress is not None:
+        progress(1.0)
     n = n_ref + (res.field if vertical else res.field.T)
     sigma_n = res.sigma_field if vertical else res.sigma_field.T
     info = {"method": method, "regularization": regularization, "axis": axis,
