@@ -449,7 +449,12 @@ def default_profile_line(data: Any) -> list[list[float]]:
     mag = np.hypot(sy, sx)
     if not np.isfinite(mag).any() or np.nanmax(mag) <= 0:
         return middle
-    i, j = np.unravel_index(int(np.nanargmax(mag)), mag.shape)
+    # the strongest point; on a plateau (within 5 % of the peak) the one nearest the centre
+    top = np.isfinite(mag) & (mag >= 0.95 * np.nanmax(mag))
+    ii, jj = np.nonzero(top)
+    k = int(np.argmin(((ii - (mag.shape[0] - 1) / 2) / mag.shape[0]) ** 2
+                      + ((jj - (mag.shape[1] - 1) / 2) / mag.shape[1]) ** 2))
+    i, j = int(ii[k]), int(jj[k])
     u = np.array([sx[i, j], sy[i, j]]) / mag[i, j]
     return _clip_line(np.array([x[j], y[i]]), u, np.array([x[0], y[0]]), np.array([x[-1], y[-1]]))
 
@@ -582,15 +587,36 @@ class Panel:
     symmetric: bool = False
 
 
-def _figure(ncols: int, nrows: int = 1, *, width_in: float = 4.2, height_in: float = 3.6):
+def _figure(width_in: float, height_in: float):
     # Object-oriented API on an Agg canvas: no global pyplot state, safe in
-    # threads and on machines without a display.
+    # threads and on machines without a display.  No layout engine: the
+    # axes are placed at fixed margins in inches (a layout engine redraws
+    # every text several times and was a third of the drawing time).
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(width_in * ncols, height_in * nrows), layout="constrained")
+    fig = Figure(figsize=(width_in, height_in))
     FigureCanvasAgg(fig)
     return fig
+
+
+# fixed layout of a field panel [inches]: image box, colour bar, margins for labels
+_PANEL_W, _PANEL_H = 4.3, 3.3
+_LEFT, _RIGHT_CB_LABEL, _CB_PAD, _CB_W = 0.75, 0.95, 0.12, 0.14
+_TOP_TITLE, _BOTTOM_LABEL, _LEGEND_H, _LINE_H = 0.62, 0.55, 0.32, 0.22
+
+
+def _place_panel(fig, k: int, *, aspect: float, top_in: float, bottom_in: float):
+    """Image axes and colour-bar axes of panel k, the image box fitted to the data aspect (height / width)."""
+    W, H = fig.get_size_inches()
+    box_w = _PANEL_W - _LEFT - _CB_PAD - _CB_W - _RIGHT_CB_LABEL
+    box_h = H - top_in - bottom_in
+    w, h = (box_w, box_w * aspect) if box_w * aspect <= box_h else (box_h / aspect, box_h)
+    x0 = k * _PANEL_W + _LEFT + (box_w - w) / 2
+    y0 = bottom_in + (box_h - h) / 2
+    ax = fig.add_axes((x0 / W, y0 / H, w / W, h / H))
+    cax = fig.add_axes(((x0 + w + _CB_PAD) / W, y0 / H, _CB_W / W, h / H))
+    return ax, cax
 
 
 def _save(fig, path: str | Path, dpi: int = DPI) -> Path:
@@ -636,8 +662,9 @@ def _limits(data: np.ndarray, symmetric: bool) -> tuple[float | None, float | No
     if symmetric:
         m = max(abs(lo), abs(hi)) or 1.0
         return -m, m
-    if hi <= lo:
-        hi = lo + (abs(lo) * 1e-6 or 1e-12)
+    if hi - lo <= 1e-9 * max(abs(lo), abs(hi)) or hi <= lo:   # a constant field: a readable +-1 % scale
+        half = 0.01 * abs(lo) or 1.0
+        lo, hi = lo - half, hi + half
     return float(lo), float(hi)
 
 
@@ -707,17 +734,25 @@ def build_fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.nda
     axis : SymmetryAxis, optional
         Drawn as a dash-dotted line on each panel.
     """
-    fig = _figure(len(panels))
-    axes = fig.subplots(1, len(panels), squeeze=False)[0]
     extent = _extent_mm(x_m, y_m)
     x_m, y_m = np.asarray(x_m, float), np.asarray(y_m, float)
     has_masked = masked is not None and bool(np.any(masked))
     has_invalid = invalid is not None and bool(np.any(invalid))
-    for ax, p in zip(axes, panels):
+    handles = _legend_handles(masked=has_masked, invalid=has_invalid, profile=profile_m is not None, axis=axis)
+    legend = bool(handles) and (has_masked or has_invalid or axis is not None)
+    title_lines = (suptitle or "").count("\n") + 1 if suptitle else 0
+    top = _TOP_TITLE - 0.3 + _LINE_H * title_lines + 0.1
+    bottom = _BOTTOM_LABEL + (_LEGEND_H if legend else 0.0)
+    aspect = abs(extent[2] - extent[3]) / max(abs(extent[1] - extent[0]), 1e-300)
+    box_w = _PANEL_W - _LEFT - _CB_PAD - _CB_W - _RIGHT_CB_LABEL
+    box_h = min(_PANEL_H - _TOP_TITLE - _BOTTOM_LABEL, max(box_w * aspect, 1.2))   # no empty band for wide fields
+    fig = _figure(_PANEL_W * len(panels), top + bottom + box_h)
+    for k, p in enumerate(panels):
+        ax, cax = _place_panel(fig, k, aspect=aspect, top_in=top, bottom_in=bottom)
         vmin, vmax = _limits(p.data, p.symmetric)
         im = ax.imshow(np.ma.masked_invalid(p.data), extent=extent, origin="upper", cmap=p.cmap,
-                       vmin=vmin, vmax=vmax, interpolation="nearest", aspect="equal")
-        cb = fig.colorbar(im, ax=ax, shrink=0.85)
+                       vmin=vmin, vmax=vmax, interpolation="nearest", aspect="auto")
+        cb = fig.colorbar(im, cax=cax)
         _plain_numbers(cb.ax.yaxis)
         cb.set_label(f"{p.title} [{p.units}]")
         ax.set_title(p.title)
@@ -741,12 +776,11 @@ def build_fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.nda
         # keep the axes on the field even if a line reaches past it (y down)
         ax.set_xlim(extent[0], extent[1])
         ax.set_ylim(extent[2], extent[3])
-    handles = _legend_handles(masked=has_masked, invalid=has_invalid, profile=profile_m is not None, axis=axis)
-    if handles and (has_masked or has_invalid or axis is not None):
-        fig.legend(handles=handles, loc="outside lower center", ncols=len(handles), fontsize="small",
-                   frameon=False)
+    if legend:
+        fig.legend(handles=handles, loc="lower center", ncols=len(handles), fontsize="small", frameon=False,
+                   bbox_to_anchor=(0.5, 0.0))
     if suptitle:
-        fig.suptitle(suptitle)
+        fig.suptitle(suptitle, y=1 - 0.08 / fig.get_size_inches()[1], va="top")
     return fig
 
 
@@ -788,7 +822,12 @@ def build_profile_figure(distance_m: np.ndarray, curves: Sequence[ProfileCurve |
             sig = None if sigmas is None else sigmas[i]
             items.append(ProfileCurve(np.asarray(c[0], float), c[1], c[2], sig))
     n = max(len(items), 1)
-    fig = _figure(1, n, width_in=6.0, height_in=2.2)
+    title_lines = title.count("\n") + 1 if title else 0
+    top, bottom, left, right = 0.25 + 0.24 * title_lines, 0.55, 0.95, 0.2
+    height = top + bottom + 1.75 * n
+    fig = _figure(6.4, height)
+    fig.subplots_adjust(left=left / 6.4, right=1 - right / 6.4, top=1 - top / height, bottom=bottom / height,
+                        hspace=0.3 / 1.45)
     axes = fig.subplots(n, 1, squeeze=False, sharex=True)[:, 0]
     s_mm = np.asarray(distance_m, float) * 1e3
     for ax, c in zip(axes, items):
@@ -804,7 +843,7 @@ def build_profile_figure(distance_m: np.ndarray, curves: Sequence[ProfileCurve |
     _plain_numbers(axes[-1].xaxis)
     axes[-1].set_xlabel("distance along profile [mm]")
     if title:
-        fig.suptitle(title)
+        fig.suptitle(title, y=1 - 0.08 / height, va="top")
     return fig
 
 
