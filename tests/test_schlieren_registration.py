@@ -26,11 +26,11 @@ TRUTH = Similarity(scale=1.3, rotation_rad=math.radians(12.0), shift_xy=(40.0, -
 BLOBS = [(70, 60, 22, 1e-4), (130, 150, 28, -1.5e-4), (55, 165, 18, 0.8e-4), (150, 55, 25, 1.2e-4)]
 
 
-def blob_field(r, c):
-    """eps = grad(phi) of Gaussian blobs, in BOS pixel coordinates (rad per px units are immaterial here)."""
+def blob_field(r, c, blobs=BLOBS):
+    """eps = grad(phi) of Gaussian blobs (row, col, 1/e radius, amplitude [rad]) in BOS pixel coordinates."""
     ey = np.zeros_like(r, float)
     ex = np.zeros_like(r, float)
-    for r0, c0, s, a in BLOBS:
+    for r0, c0, s, a in blobs:
         g = a * np.exp(-((r - r0) ** 2 + (c - c0) ** 2) / s ** 2)
         ey += -2 * (r - r0) / s * g
         ex += -2 * (c - c0) / s * g

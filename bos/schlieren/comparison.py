@@ -167,7 +167,7 @@ def _knife_parts(data):
         angle = (data.attrs.get("calibration") or {}).get("knife_angle_deg")
     if angle is None:
         raise InputError("the knife-edge result does not say the knife orientation (knife_angle_deg)")
-    orient = knife_orientation(float(angle))
+    orient = knife_orientation(float(np.ravel(angle)[0]))
     eps = np.asarray(var.data, float)
     usable = np.isfinite(eps)
     for flag in ("saturated", "lens", "invalid", "uncalibrated"):
@@ -206,6 +206,8 @@ def compare_results(bos_data, knife_data, *, control_points: tuple[np.ndarray, n
         Not a BOS / knife-edge result, < 3 control points, no common
         structure for automatic registration, no overlap.
     """
+    from scipy.ndimage import map_coordinates
+
     ey, ex, b_rows, b_cols, b_valid, b_pix = _bos_parts(bos_data)
     kn, k_usable, k_lit, orient, k_pix = _knife_parts(knife_data)
     warnings: list[str] = []
@@ -231,8 +233,9 @@ def compare_results(bos_data, knife_data, *, control_points: tuple[np.ndarray, n
     R, C = np.meshgrid(rows, cols, indexing="ij")
     ir, ic = np.clip(np.round(R).astype(int), 0, H - 1), np.clip(np.round(C).astype(int), 0, W - 1)
     k_s = _smooth_nan(np.where(k_usable, kn, np.nan), step / 2.0 if step > 1 else 0.0)
-    k_grid = k_s[ir, ic]
-    k_grid[~k_usable[ir, ic]] = np.nan
+    k_bad = ~np.isfinite(k_s)
+    k_grid = map_coordinates(np.where(k_bad, 0.0, k_s), [R, C], order=1, mode="nearest")
+    k_grid[(map_coordinates(k_bad.astype(float), [R, C], order=1, mode="nearest") > 0) | ~k_usable[ir, ic]] = np.nan
     lit = k_lit[ir, ic]
     inv = sim.inverse()
     br, bc = inv.apply(R, C)
