@@ -12,7 +12,9 @@ XObject that fills a disc of the dot diameter with four Bezier arcs (radius
 error of the arc approximation 0.027 %).  Soft dots are a staircase of
 ``SOFT_LEVELS`` concentric grey discs painted with the Darken blend mode, so
 overlapping soft dots combine as the darker of the two, as in the raster.
-Noise patterns are embedded as an 8-bit image at the requested dpi.
+Noise patterns are embedded as an 8-bit image at the requested dpi, or at
+a quarter of the finest scale if that is coarser (the B-spline noise has
+little detail below it; viewers interpolate).
 
 References
 ----------
@@ -29,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .pattern import (SOFT_LEVELS, Layout, PatternSpec, _noise_darkness, iter_dot_rows,
+from .pattern import (SOFT_LEVELS, Layout, PatternSpec, _noise_darkness, iter_dot_rows, noise_pitch_mm,
                       soft_profile)
 
 PT_PER_MM = 72.0 / 25.4
@@ -150,11 +152,10 @@ def write_pdf(path: str | Path, spec: PatternSpec, layout: Layout) -> int | None
     # object numbers
     CATALOG, PAGES, PAGE, INFO, FONT, GSTATE, DOT, CONTENT, IMAGE = 1, 2, 3, 4, 5, 6, 7, 9, 11
     noise = spec.kind == "noise"
-    p = spec.pitch_mm
-    if noise:
-        nrows, ncols = spec.raster_shape
-        ic0, ic1 = max(math.ceil(x0 / p - 0.5), 0), min(math.floor(x1 / p - 0.5) + 1, ncols)
-        ir0, ir1 = max(math.ceil(y0 / p - 0.5), 0), min(math.floor(y1 / p - 0.5) + 1, nrows)
+    if noise:  # image pixels of size p whose centres lie in the patterned area
+        p = noise_pitch_mm(spec)
+        ic0, ic1 = math.ceil(x0 / p - 0.5), math.floor(x1 / p - 0.5) + 1
+        ir0, ir1 = math.ceil(y0 / p - 0.5), math.floor(y1 / p - 0.5) + 1
 
     def content():
         head = f"q {a:.12f} 0 0 {-a:.12f} 0 {h_pt:.6f} cm\n"  # 1 unit = 1 um, y down
@@ -205,6 +206,6 @@ def write_pdf(path: str | Path, spec: PatternSpec, layout: Layout) -> int | None
         wr.stream(CONTENT, "", content())
         if noise:
             wr.stream(IMAGE, f"/Type /XObject /Subtype /Image /Width {ic1 - ic0} /Height {ir1 - ir0} "
-                             "/ColorSpace /DeviceGray /BitsPerComponent 8", image_rows())
+                             "/ColorSpace /DeviceGray /BitsPerComponent 8 /Interpolate true", image_rows())
         wr.finish(CATALOG, INFO)
     return None if noise else n_dots[0]
