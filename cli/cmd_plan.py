@@ -171,35 +171,73 @@ def run_plan(exp, rig_kw: dict[str, Any], *, max_blur_m: float | None = None):
     return rig, result, design, cautions
 
 
-def write_chart(path: Path, rig, result) -> None:
-    """Sensitivity and object-plane blur against Z_D, the chosen design marked (PNG, atomic)."""
-    from matplotlib.figure import Figure
+def build_chart(rig, result):
+    """Sensitivity, smallest detectable deflection and object-plane blur against Z_D (a Figure, not saved).
 
-    from bos._io import atomic_path
+    Three stacked panels on a shared logarithmic Z_D axis, each on its own
+    logarithmic scale (the curves span decades and no longer share one axis),
+    the chosen design marked with the same marker in every panel and in the
+    legend.
+    """
+    import numpy as np
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    from matplotlib.ticker import ScalarFormatter
+
     from bos.optics import z_d_sweep
 
     sw = z_d_sweep(rig)
-    fig = Figure(figsize=(7.0, 4.5), dpi=120)
-    ax = fig.add_subplot(1, 1, 1)
-    ax.plot(sw["z_d_m"], sw["sensitivity_m_per_rad"] * 1e3, color="tab:blue", label="sensitivity M·Z_D")
-    ax.set_xlabel("object to background distance Z_D [m]")
-    ax.set_ylabel("sensitivity [mm/rad on the sensor]", color="tab:blue")
-    ax.plot([rig.z_d], [result.sensitivity_mm_per_rad], "o", color="tab:blue", label="chosen design")
-    ax2 = ax.twinx()
-    ax2.plot(sw["z_d_m"], sw["object_blur_m"] * 1e3, color="tab:red", label="object-plane blur (total)")
-    if result.object_width_m < 2.0 * sw["object_blur_m"].max():
-        ax2.axhline(result.object_width_m * 1e3, color="tab:red", ls=":", lw=1, label="object width")
-    ax2.plot([rig.z_d], [result.object_blur_m * 1e3], "s", color="tab:red")
-    ax2.set_ylabel("object-plane blur [mm]", color="tab:red")
-    ax.axvline(rig.z_d, color="0.4", ls="--", lw=1, label="_chosen")
+    z = sw["z_d_m"]
+    noise = float(getattr(result, "noise_px", 0.05) or 0.05)
+    fig = Figure(figsize=(6.4, 7.2))
+    FigureCanvasAgg(fig)
+    fig.subplots_adjust(left=0.15, right=0.96, top=0.88, bottom=0.08, hspace=0.12)
+    axes = fig.subplots(3, 1, sharex=True)
+    chosen = dict(marker="o", ms=7, mfc="white", mew=1.8, ls="none", zorder=5)
+    curves = (
+        (sw["sensitivity_m_per_rad"] * 1e3, result.sensitivity_mm_per_rad, "sensitivity M·Z_D\n[mm/rad on the sensor]",
+         "tab:blue"),
+        (noise / sw["sensitivity_px_per_rad"] * 1e6, result.min_deflection_rad * 1e6,
+         f"smallest deflection\n[µrad] at {noise:g} px noise", "tab:green"),
+        (sw["object_blur_m"] * 1e3, result.object_blur_m * 1e3, "object-plane blur\n(total) [mm]", "tab:red"),
+    )
+    for ax, (values, at_design, label, colour) in zip(axes, curves):
+        ax.plot(z, values, "-", color=colour, lw=1.6)
+        ax.plot([rig.z_d], [at_design], color=colour, **chosen)
+        ax.set_yscale("log")
+        ax.set_ylabel(label)
+        ax.axvline(rig.z_d, color="0.4", ls="--", lw=1)
+        ax.grid(True, which="both", alpha=0.25)
+    blur_ax = axes[2]
+    width_mm = result.object_width_m * 1e3
+    lo, hi = np.nanmin(curves[2][0]), np.nanmax(curves[2][0])
+    if lo <= width_mm <= 10 * hi:
+        blur_ax.axhline(width_mm, color="tab:red", ls=":", lw=1.2)
+        blur_ax.annotate(f"object width {width_mm:.3g} mm", (z[0], width_mm), xytext=(2, 3),
+                         textcoords="offset points", fontsize=8, color="tab:red")
+    axes[-1].set_xscale("log")
+    axes[-1].set_xlabel("object to background distance Z_D [m]")
+    fmt = ScalarFormatter(useOffset=False)
+    axes[-1].xaxis.set_major_formatter(fmt)
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color="0.2", **chosen,
+                      label=f"chosen design: Z_D = {rig.z_d:.3g} m, {result.sensitivity_mm_per_rad:.3g} mm/rad, "
+                            f"{result.min_deflection_rad * 1e6:.3g} µrad, blur {result.object_blur_m * 1e3:.3g} mm"),
+               Line2D([], [], color="0.4", ls="--", lw=1, label="chosen Z_D")]
+    fig.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, 0.955), fontsize=8, frameon=False, ncols=1)
     fixed = f"Z_A = {rig.z_a:.3g} m fixed" if rig.z_a_m is not None else f"Z_B = {rig.z_b:.3g} m fixed"
-    ax.set_title(f"f = {rig.focal_length_m * 1e3:.4g} mm, N = {rig.f_number:.3g}, {fixed}; "
-                 f"chosen Z_D = {rig.z_d:.3g} m", fontsize=9)
-    lines = [ln for ln in ax.get_lines() + ax2.get_lines() if not ln.get_label().startswith("_")]
-    ax.legend(lines, [ln.get_label() for ln in lines], loc="upper left", fontsize=8)
-    fig.tight_layout()
+    fig.suptitle(f"f = {rig.focal_length_m * 1e3:.4g} mm, N = {rig.f_number:.3g}, {fixed}", fontsize=10, y=0.995)
+    return fig
+
+
+def write_chart(path: Path, rig, result) -> None:
+    """Write :func:`build_chart` as PNG (atomic)."""
+    from bos._io import atomic_path
+
+    fig = build_chart(rig, result)
     with atomic_path(path) as tmp:
-        fig.savefig(tmp, format="png")
+        fig.savefig(tmp, format="png", dpi=100)
 
 
 def print_table(result, design, cautions: list[str]) -> None:
