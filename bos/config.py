@@ -494,6 +494,30 @@ def _check_profile(value: list) -> list:
     return pts
 
 
+#: Characters a result name may hold: letters, digits, spaces, '-', '_', '.', '+' (no path separators).
+_NAME_OK = set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789-_.+ ")
+
+
+def check_output_name(value: str) -> str:
+    """A result base name must be a plain, visible file name (no folders, not hidden, not empty)."""
+    label = key_label("output.name")
+    name = str(value)
+    if not name.strip():
+        raise ConfigError(f"{label} is empty: give a base name for the result files")
+    if name != name.strip():
+        raise ConfigError(f"{label} = {name!r} starts or ends with a space")
+    if name.startswith(".") or "/" in name or "\\" in name or name in (".", ".."):
+        raise ConfigError(f"{label} = {name!r} must be a plain file name (no folders, not starting with '.'); "
+                          "use output.directory for the folder")
+    bad = sorted(set(name) - _NAME_OK)
+    if bad:
+        raise ConfigError(f"{label} = {name!r} holds characters not allowed in a result name: {''.join(bad)!r} "
+                          "(use letters, digits, spaces, '-', '_', '.', '+')")
+    if len(name) > 120:
+        raise ConfigError(f"{label} is longer than 120 characters")
+    return name
+
+
 def _check_polygons(value: list) -> list:
     polys = []
     label = key_label("images.mask_polygons")
@@ -528,6 +552,7 @@ _POST: dict[tuple[str, str], Callable[[Any], Any]] = {
     ("camera", "sensor_px"): _check_sensor,
     ("medium", "composition"): _check_composition,
     ("output", "profile"): _check_profile,
+    ("output", "name"): check_output_name,
     ("images", "mask_polygons"): _check_polygons,
     ("reconstruction", "reference_region"): _check_reference_region,
 }

@@ -250,13 +250,24 @@ def _read_tiff(path: Path, frame: int | None):
     with tifffile.TiffFile(path) as tif:
         pages = tif.pages
         n = len(pages)
-        idx = _frame_index(frame, n, path)
-        page = pages[idx]
-        arr = page.asarray()
+        page = pages[0 if n == 1 else _frame_index(frame, n, path)]
         axes = getattr(page, "axes", "")
-        if arr.ndim == 3 and axes.startswith("S"):  # planar configuration: (S, Y, X)
-            arr = np.moveaxis(arr, 0, -1)
+        samples = int(getattr(page, "samplesperpixel", 1) or 1)
+        photometric = int(getattr(page, "photometric", 1) or 1)
         lossy = int(page.compression) in _LOSSY_TIFF_COMPRESSION
+        arr = page.asarray()
+        if samples > 1 and (axes.startswith("S") or photometric in (0, 1)):
+            # separate sample planes: the layout a numpy stack of frames gets by default (or grey
+            # extra samples).  Mixing frames as colour gives nonsense, so a plane must be chosen.
+            if n == 1 and frame is not None:
+                idx = _frame_index(frame, samples, path)
+                planes = arr if axes.startswith("S") else np.moveaxis(arr, -1, 0)
+                return planes[idx], samples, lossy, idx
+            raise InputError(
+                f"{path} holds {samples} separate image planes in one page (a stack of frames, or colour "
+                "planes): choose one with images.frame (or images.reference_frame / images.measurement_frame), "
+                "or save colour pictures with interleaved channels")
+        idx = _frame_index(frame, n, path)
     return arr, n, lossy, idx
 
 
@@ -581,7 +592,18 @@ def read_mask(path: str | os.PathLike, *, shape: tuple[int, int]) -> np.ndarray:
         nc = arr.shape[2]
         if nc in (2, 4):
             arr = arr[..., : nc - 1]
-        mask = np.any(arr != 0, axis=2)
+        arr = arr.max(axis=2)
+    if arr.ndim != 2:
+        raise InputError(f"mask {p} is not a 2-D picture (array shape {arr.shape})")
+    if arr.dtype.kind == "f" and not np.all(np.isfinite(arr)):
+        raise InputError(f"mask {p} has non-finite pixel values")
+    levels = np.unique(arr)
+    if levels.size > 2:
+        # grey (anti-aliased or photographed) mask: pixels at >= 50 % of the brightest level are masked
+        cut = 0.5 * float(levels[-1])
+        mask = arr >= cut
+        warnings.warn(f"mask {p} is not black-and-white ({levels.size} grey levels): pixels at >= 50 % of "
+                      f"the brightest level are masked ({100 * mask.mean():.1f} % of the picture)", stacklevel=2)
     else:
         mask = arr != 0
     if mask.shape != (rows, cols):

@@ -37,7 +37,7 @@ def summarize(disp, dens, *, medium, warnings: list[str]) -> dict[str, Any]:
     out: dict[str, Any] = {
         "vectors": int(n),
         "grid_shape": [int(s) for s in mag.shape],
-        "peak_displacement_px": _finite_stat(mag, np.max),
+        "peak_displacement_px": _finite_stat(np.where(valid, mag, np.nan), np.max),
         "valid_fraction": float(valid.sum() / unmasked) if unmasked else 0.0,
         "masked_fraction": float(disp.masked.sum() / n) if n else 0.0,
         "invalid_fraction": float(invalid.sum() / n) if n else 0.0,

@@ -144,6 +144,9 @@ def load_inputs(exp: Experiment) -> Inputs:
     with warnings_module.catch_warnings(record=True) as caught:
         warnings_module.simplefilter("always")
         ref = images.read_image(ref_path, frame=ref_frame)
+        if ref_path.resolve() == meas_path.resolve() and ref_frame == meas_frame and ref.n_frames > 1:
+            raise ConfigError(f"reference and measurement are the same {ref.n_frames}-frame file {ref_path.name} "
+                              "and no frames are chosen: set images.reference_frame and images.measurement_frame")
         meas = images.read_image(meas_path, frame=meas_frame)
         images.check_pair(ref, meas)
         shape = ref.data.shape
@@ -190,17 +193,59 @@ def with_exif_defaults(exp: Experiment, exif: dict[str, Any]) -> tuple[Experimen
     return dataclasses.replace(exp, camera=cam), [note]
 
 
+def _mask_name(inputs: Inputs) -> str:
+    p = inputs.paths.get("mask") if inputs.paths else None
+    return Path(p).name if p else "polygons"
+
+
 def measure_displacement(inputs: Inputs, exp: Experiment):
     """Estimate the background displacement field [px] between the two images."""
     from . import displacement
 
+    mask_name = _mask_name(inputs)
     if inputs.mask is not None and bool(np.all(inputs.mask)):
-        raise InputError("the mask covers the whole image: there is nothing to measure")
-    return displacement.estimate(inputs.reference, inputs.measurement, method=exp.processing.method,
+        raise InputError(f"the mask covers the whole image ({mask_name}): there is nothing to measure "
+                         "(masks mark the no-data areas in white/non-zero)")
+    region = camera_motion_region(exp, inputs.reference.shape)
+    if inputs.mask is not None and region is not None:
+        from .displacement import camera_region
+
+        box = camera_region(inputs.reference.shape, region=region)
+        if (box & ~inputs.mask).sum() < max(64, 0.02 * box.sum()):
+            raise InputError(f"the mask covers the camera-motion region ({mask_name} over the {camera_region_name(exp)}): "
+                             "choose another reconstruction.reference_region or set processing.camera_motion")
+    disp = displacement.estimate(inputs.reference, inputs.measurement, method=exp.processing.method,
                                  mask=inputs.mask,
-                                 camera_motion=camera_motion_region(exp, inputs.reference.shape),
+                                 camera_motion=region,
                                  camera_region_name=camera_region_name(exp),
                                  **displacement_options(exp))
+    return reject_weak_peaks(disp)
+
+
+def reject_weak_peaks(disp, *, min_peak: float | None = None):
+    """Mark vectors whose normalised correlation peak is below ``min_peak`` as invalid.
+
+    Such a peak means the two windows do not show the same background
+    (occlusion, a reflection, a different picture), whatever the neighbours
+    say: the normalised median test alone accepts coherent garbage.  Unrelated
+    random-dot windows give 0.2-0.36 with 16 px windows (measured), matching ones
+    > 0.9.  Estimators without a peak height are returned unchanged.
+    """
+    import dataclasses
+
+    min_peak = MIN_MEDIAN_PEAK if min_peak is None else min_peak
+    peak = (getattr(disp, "params", None) or {}).get("peak_height")
+    if peak is None or np.shape(peak) != np.shape(disp.dy):
+        return disp
+    weak = (np.asarray(peak, float) < min_peak) & ~np.asarray(disp.masked, bool)
+    if not weak.any():
+        return disp
+    invalid = np.asarray(disp.invalid, bool) | weak
+    nan = np.where(invalid | disp.masked, np.nan, 1.0)
+    params = dict(disp.params)
+    params["weak_peak_vectors"] = int(weak.sum())
+    return dataclasses.replace(disp, invalid=invalid, dy=disp.dy * nan, dx=disp.dx * nan,
+                               sigma_dy=disp.sigma_dy * nan, sigma_dx=disp.sigma_dx * nan, params=params)
 
 
 def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None, medium=None):
@@ -260,6 +305,87 @@ def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None
 # ---------------------------------------------------------------------------
 # One frame, all stages
 # ---------------------------------------------------------------------------
+
+
+#: Linear acoustics holds while the acoustic Mach number p'/(rho0 c^2) stays small; 0.01 is a
+#: common-practice bound (about 157 dB re 20 uPa in room air).
+LINEAR_ACOUSTICS_MAX_MACH = 0.01
+
+
+def acoustic_mach_number(pressure_pa: float, *, medium) -> float:
+    """Acoustic Mach number u/c = p'/(rho0 c^2) of a plane wave of amplitude ``pressure_pa`` [Pa].
+
+    References
+    ----------
+    Kinsler, L. E., Frey, A. R., Coppens, A. B. and Sanders, J. V. (2000).
+    Fundamentals of Acoustics, 4th ed., Wiley, section 5.2 (plane-wave
+    impedance p = rho0 c u) -- from memory.
+    """
+    if not np.isfinite(pressure_pa):
+        return 0.0
+    c = float(medium.speed_of_sound)
+    return abs(float(pressure_pa)) / (float(medium.ambient_density) * c * c)
+
+
+def _line_meets_field(line_m, x_m: np.ndarray, y_m: np.ndarray) -> bool:
+    """Does the straight line [[x0, y0], [x1, y1]] [m] pass through the field's rectangle?"""
+    (x0, y0), (x1, y1) = line_m
+    t = np.linspace(0.0, 1.0, 1001)
+    x, y = x0 + t * (x1 - x0), y0 + t * (y1 - y0)
+    xs, ys = sorted((float(x_m[0]), float(x_m[-1]))), sorted((float(y_m[0]), float(y_m[-1])))
+    return bool(np.any((x >= xs[0]) & (x <= xs[1]) & (y >= ys[0]) & (y <= ys[1])))
+
+
+def _nanstat(a, fn) -> float:
+    a = np.asarray(a, float)
+    a = a[np.isfinite(a)]
+    return float(fn(a)) if a.size else float("nan")
+
+
+#: Median normalised correlation peak below which the pair is refused (unrelated pictures give
+#: 0.2-0.36 with 16 px windows, matching rendered pairs 0.9997) and below which a run warns.
+MIN_MEDIAN_PEAK = 0.4
+WEAK_MEDIAN_PEAK = 0.6
+
+#: Above this fraction of rejected (invalid) vectors among the unmasked ones a run warns.
+MAX_REJECTED_FRACTION = 0.2
+
+
+def validation_warnings(disp) -> list[str]:
+    """Fail when validation rejected every vector; warn when it rejected many.
+
+    Raises
+    ------
+    InputError
+        No valid vector is left outside the mask.
+    """
+    unmasked = ~np.asarray(disp.masked, bool)
+    n = int(unmasked.sum())
+    if n == 0:
+        return []
+    rejected = int((np.asarray(disp.invalid, bool) & unmasked).sum())
+    peak = (getattr(disp, "params", None) or {}).get("peak_height")
+    out: list[str] = []
+    if peak is not None and np.shape(peak) == np.shape(unmasked):
+        heights = np.asarray(peak, float)[unmasked]
+        heights = heights[np.isfinite(heights)]
+        median_peak = float(np.median(heights)) if heights.size else 0.0
+        if median_peak < MIN_MEDIAN_PEAK:
+            raise InputError(f"the two pictures do not show the same background: the median normalised correlation "
+                             f"peak is {median_peak:.2f} (a matching pair gives > 0.8); check the file names, frames "
+                             "and that the camera and background did not move by more than the first window")
+        if median_peak < WEAK_MEDIAN_PEAK:
+            out.append(f"weak correlation between the pictures (median normalised peak {median_peak:.2f}): "
+                       "blur, noise, lossy compression or strong gradients; expect larger errors")
+    if rejected == n:
+        raise InputError(f"all {n} displacement vectors were rejected by validation (no correlation peak or "
+                         "outliers everywhere): the pictures may not show the same background, be out of focus, "
+                         "or the displacement exceeds the first window (raise processing.window_px)")
+    if rejected > MAX_REJECTED_FRACTION * n:
+        out.append(f"{100 * rejected / n:.0f} % of the displacement vectors were rejected by validation (more than "
+                f"{100 * MAX_REJECTED_FRACTION:.0f} %): the fields there are interpolated or missing; check focus, "
+                "texture, and the window size against the largest displacement")
+    return out
 
 
 def check_reference_region(disp, exp: Experiment) -> tuple[dict[str, Any], list[str]]:
@@ -342,17 +468,27 @@ def process_inputs(inputs: Inputs, exp: Experiment, *, progress: ProgressFn | No
 
     rig = exp.rig()
     medium = exp.medium_model()
+    early: list[str] = []
+    if np.array_equal(inputs.reference, inputs.measurement):
+        early.append("reference and measurement are pixel-identical (the same picture twice?): no displacement "
+                     "is possible, every field is ambient by construction")
     _tick(progress, "displacement", 0.0)
     disp = measure_displacement(inputs, exp)
+    early += validation_warnings(disp)
     _tick(progress, "displacement", 1.0)
     _tick(progress, "reconstruction", 0.0)
     eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
                                                rig=rig, medium=medium)
     _tick(progress, "reconstruction", 1.0)
-    warnings = list(inputs.warnings) + list(exif_notes or [])
+    warnings = list(inputs.warnings) + list(exif_notes or []) + early
     warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]
     warnings += [str(w) for w in ((getattr(disp, "params", None) or {}).get("warnings") or [])]
     warnings += [str(w) for w in (getattr(dens, "warnings", None) or [])]
+    if exp.output.profile is not None and not _line_meets_field(exp.output.profile, x_m, y_m):
+        (x0, y0), (x1, y1) = exp.output.profile
+        warnings.append(f"the profile line ({x0 * 1e3:.1f}, {y0 * 1e3:.1f}) -> ({x1 * 1e3:.1f}, {y1 * 1e3:.1f}) mm lies outside "
+                     f"the measured field (x {x_m[0] * 1e3:.1f} .. {x_m[-1] * 1e3:.1f} mm, y {y_m[0] * 1e3:.1f} .. "
+                     f"{y_m[-1] * 1e3:.1f} mm): the profile holds no data (output.profile / --profile)")
     region_report = None
     if dens is not None and exp.reconstruction.kind == "planar":
         region_report, region_warning = check_reference_region(disp, exp)
@@ -371,7 +507,20 @@ def process_inputs(inputs: Inputs, exp: Experiment, *, progress: ProgressFn | No
         acoustic = acoustic_field(dens.density, medium=medium, sigma_density=dens.sigma_density)
         summary["peak_acoustic_pressure_pa"] = acoustic.peak_pressure_pa
         summary["peak_sound_pressure_level_db"] = acoustic.peak_spl_db
-        summary["temperature_model"] = "isentropic (acoustic)"
+        # one temperature model everywhere: the file, the figures and the summary all show the
+        # isentropic (acoustic) temperature in sound mode
+        tk = np.asarray(acoustic.temperature_k, float)
+        tmax, tmin = _nanstat(tk, np.max), _nanstat(tk, np.min)
+        summary.update({"min_temperature_k": tmin, "max_temperature_k": tmax,
+                        "peak_temperature_rise_k": tmax - medium.temperature_k,
+                        "median_temperature_uncertainty_k": _nanstat(acoustic.sigma_temperature_k, np.median)})
+        summary["temperature_model"] = "isentropic (acoustic): T'/T0 = (gamma - 1)/gamma * p'/p0"
+        mach = acoustic_mach_number(acoustic.peak_pressure_pa, medium=medium)
+        if mach > LINEAR_ACOUSTICS_MAX_MACH:
+            warnings.append(f"peak acoustic pressure {acoustic.peak_pressure_pa:.0f} Pa is beyond the linear-acoustics "
+                            f"range (acoustic Mach number p'/(rho0 c^2) = {mach:.3f} > {LINEAR_ACOUSTICS_MAX_MACH}): "
+                            "p' = c^2 rho' and the isentropic temperature lose accuracy (shocks, streaming)")
+            summary["warnings"] = list(warnings)
     attrs = {
         "software": "bos-toolkit",
         "software_version": bos.__version__,

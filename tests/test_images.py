@@ -110,11 +110,22 @@ def test_tiff_multipage_float_and_planar(tmp_path):
     assert imf.bit_depth == 32
     np.testing.assert_array_equal(imf.data, f.astype(np.float64))
 
-    rgb = (rng.random((3, 10, 14)) * 255).astype(np.uint8)  # planar (separate) RGB
-    tifffile.imwrite(tmp_path / "planar.tif", rgb, photometric="rgb", planarconfig="separate")
-    imp = read_image(tmp_path / "planar.tif")
-    expect = sum(w * rgb[i] for i, w in enumerate(REC709)) / 255.0
-    np.testing.assert_allclose(imp.data, expect, atol=1e-12)
+    # planar (separate) planes: the layout tifffile gives a (3, rows, cols) stack by default, so
+    # they may be three frames; mixing them as colour would be nonsense: a plane must be chosen
+    planes = (rng.random((3, 10, 14)) * 255).astype(np.uint8)
+    tifffile.imwrite(tmp_path / "planar.tif", planes, photometric="rgb", planarconfig="separate")
+    with pytest.raises(InputError, match="separate image planes"):
+        read_image(tmp_path / "planar.tif")
+    imp = read_image(tmp_path / "planar.tif", frame=1)
+    assert imp.n_frames == 3
+    np.testing.assert_array_equal(imp.data, planes[1] / 255.0)
+    with pytest.raises(InputError, match="out of range"):
+        read_image(tmp_path / "planar.tif", frame=3)
+    extra = (rng.random((10, 14, 3)) * 255).astype(np.uint8)   # grey with extra samples
+    tifffile.imwrite(tmp_path / "extra.tif", extra, photometric="minisblack", planarconfig="contig")
+    with pytest.raises(InputError, match="separate image planes"):
+        read_image(tmp_path / "extra.tif")
+    np.testing.assert_array_equal(read_image(tmp_path / "extra.tif", frame=2).data, extra[..., 2] / 255.0)
 
 
 def test_jpeg_lossy_flag_warning_and_exif(tmp_path):
