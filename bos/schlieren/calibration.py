@@ -568,7 +568,6 @@ def calibrate_knife_edge(image, no_flow, *, knife, object_pixel_m: float, lens: 
         if (ref >= CAMERA_CLIP * float(full_scale)).mean() > 0.01:
             warnings.append("the no-flow picture is clipped (over-exposed) on more than 1 % of its pixels")
 
-    rr, cc = np.mgrid[0:rows, 0:cols]
     lens_mask = np.zeros((rows, cols), bool)
     exposure = float("nan")
     if lens is not None:
@@ -576,22 +575,27 @@ def calibrate_knife_edge(image, no_flow, *, knife, object_pixel_m: float, lens: 
         R = float(lens.radius_px)
         if not (0.0 <= r0 <= rows - 1 and 0.0 <= c0 <= cols - 1):
             raise InputError(f"lens centre ({r0:g}, {c0:g}) px is outside the picture ({rows}x{cols} px)")
+        # work in the window around the lens only (large pictures)
+        win = (slice(max(0, int(r0 - 1.7 * R)), min(rows, int(r0 + 1.7 * R) + 2)),
+               slice(max(0, int(c0 - 1.7 * R)), min(cols, int(c0 + 1.7 * R) + 2)))
+        rr, cc = np.mgrid[win]
         rho = np.hypot(rr - r0, cc - c0)
-        lens_mask = rho <= R
-        annulus = (rho >= 1.15 * R) & (rho <= 1.6 * R) & ~invalid
+        lens_mask[win] = rho <= R
+        w_invalid, w_clip = invalid[win], cam_bright[win] | cam_dark[win]
+        annulus = (rho >= 1.15 * R) & (rho <= 1.6 * R) & ~w_invalid
         if annulus.sum() < 30:
             raise InputError("too few lit pixels around the lens to measure the illumination there; "
                              "check the lens centre and radius")
-        use = (rho <= lens.use_fraction * R) & ~invalid & ~cam_bright & ~cam_dark
+        use = (rho <= lens.use_fraction * R) & ~w_invalid & ~w_clip
         if use.sum() < 50:
             raise InputError(f"the calibration lens has only {int(use.sum())} usable pixels (lit, not clipped, inside "
                              f"{lens.use_fraction:g} of its radius); the lens response is saturated everywhere "
                              "or the lens lies outside the picture")
-        illum = _quadratic_surface(rr[annulus], cc[annulus], ref[annulus], rr[use], cc[use])
+        illum = _quadratic_surface(rr[annulus], cc[annulus], ref[win][annulus], rr[use], cc[use])
         if np.any(illum <= 0):
             raise InputError("cannot estimate the illumination under the lens from its surroundings")
-        lens_ratio = img[use] / illum
-        exposure = float(np.median(ratio[annulus]))
+        lens_ratio = img[win][use] / illum
+        exposure = float(np.median(ratio[win][annulus]))
         noise = ratio_noise(ratio, ~invalid & ~lens_mask & ~cam_bright & ~cam_dark)
         if not math.isfinite(noise):
             noise = float(np.std(lens_ratio))

@@ -444,13 +444,16 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
 
     # ---- local tile shifts + RANSAC (scikit-image) for the final transform and its residual
     sim = _from_params(*params)
-    full = warped(params, *np.meshgrid(np.arange(H, dtype=float), np.arange(W, dtype=float), indexing="ij"))
-    kfull = _smooth_nan(np.where(kvalid, knife, np.nan), sm_f)
-    tile = int(max(16, min(H, W) // 6))
+    st = max(1, int(math.ceil(max(H, W) / 768.0)))  # tiles on a decimated grid for large pictures
+    tr_, tc_ = np.arange(0, H, st, dtype=float), np.arange(0, W, st, dtype=float)
+    full = warped(params, *np.meshgrid(tr_, tc_, indexing="ij"))
+    kfull = _smooth_nan(np.where(kvalid, knife, np.nan), sm_f)[::st, ::st]
+    Ht, Wt = full.shape
+    tile = int(max(16, min(Ht, Wt) // 6))
     src, dst = [], []
     noise = np.nanstd(kfull - _smooth_nan(kfull, 2.0 * sm_f + 1.0))
-    for r0 in range(0, H - tile + 1, tile):
-        for c0 in range(0, W - tile + 1, tile):
+    for r0 in range(0, Ht - tile + 1, tile):
+        for c0 in range(0, Wt - tile + 1, tile):
             a = kfull[r0:r0 + tile, c0:c0 + tile]
             b = full[r0:r0 + tile, c0:c0 + tile]
             ok = np.isfinite(a) & np.isfinite(b)
@@ -464,8 +467,8 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
             if np.hypot(*shift) > tile / 4:
                 continue
             # the BOS point that should sit at the tile centre sits at centre - shift in the knife picture
-            ctr = np.array([r0 + (tile - 1) / 2.0, c0 + (tile - 1) / 2.0])
-            br, bc = sim.inverse().apply(ctr[0] - shift[0], ctr[1] - shift[1])
+            ctr = np.array([r0 + (tile - 1) / 2.0, c0 + (tile - 1) / 2.0]) * st
+            br, bc = sim.inverse().apply(ctr[0] - shift[0] * st, ctr[1] - shift[1] * st)
             src.append((bc, br))
             dst.append((ctr[1], ctr[0]))
     n_tiles = len(src)
