@@ -115,3 +115,39 @@ def test_write_virtual_views(tmp_path):
         write_virtual_views(ResultData(coords={}, variables={}, attrs={}), tmp_path, "x")
     with pytest.raises(InputError, match="cutoff"):
         write_virtual_views(_result(ey, ex), tmp_path, "x", cutoff=1.5)
+
+
+def test_virtual_views_of_a_processed_run(tmp_path):
+    """From an in-memory run (bos.output.as_result_data): a hot region bends rays away from its axis,
+    so behind a vertical knife (normal +x) its right side is brighter than its left side."""
+    iio = pytest.importorskip("imageio.v3")
+    from bos import config, synthetic
+    from bos.output import as_result_data
+    from bos.stages import inputs_from_arrays, process_inputs
+
+    shape = (96, 128)
+    rows, cols = np.mgrid[0:shape[0], 0:shape[1]].astype(float)
+    cy, cx = (shape[0] - 1) / 2, (shape[1] - 1) / 2
+    g = np.exp(-((rows - cy) ** 2 + (cols - cx) ** 2) / (2 * 14.0 ** 2))
+    dy, dx = -0.03 * (rows - cy) * g, -0.03 * (cols - cx) * g          # features move toward the hot axis
+    pair = synthetic.render_pair(shape=shape, displacement=(dy, dx), dot_diameter_px=2.8, density=0.55, seed=3,
+                                 bit_depth=16, noise=True)
+    exp_file = tmp_path / "e.toml"
+    exp_file.write_text("[camera]\nfocal_length_mm = 50\npixel_pitch_um = 5\nf_number = 11\n"
+                        "[geometry]\ncamera_to_object_m = 0.6\nobject_to_background_m = 0.4\n"
+                        "[processing]\nwindow_px = 32\nfinal_window_px = 16\npasses = 2\ncamera_motion = \"none\"\n"
+                        "[reconstruction]\nkind = \"none\"\n[output]\ndirectory = \"out\"\nname = \"v\"\nfigures = false\n")
+    exp = config.load_experiment(exp_file)
+    data = as_result_data(process_inputs(inputs_from_arrays(pair.reference, pair.measurement), exp))
+    files = write_virtual_views(data, tmp_path / "views", "run", knife_angle_deg=90.0)
+    assert [f.name for f in files] == ["run-knife-90deg.png", "run-circular.png", "run-colour.png",
+                                       "run-colour-key.png"]
+    img = iio.imread(files[0]).astype(float)
+    r0 = float(np.asarray(data.coords["row_px"].data)[0])
+    c0 = float(np.asarray(data.coords["col_px"].data)[0])
+    row = int(round(cy - r0))
+    left = img[row, int(round(cx - 14 - c0))]
+    right = img[row, int(round(cx + 14 - c0))]
+    assert right - left > 40
+    circ = iio.imread(files[1]).astype(float)
+    assert circ[row, int(round(cx - 14 - c0))] == pytest.approx(circ[row, int(round(cx + 14 - c0))], abs=25)
