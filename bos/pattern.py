@@ -457,7 +457,9 @@ def page_layout(spec: PatternSpec) -> Layout:
         lay.rects.append((xr + k - TICK_W_MM / 2, yb - tall, xr + k + TICK_W_MM / 2, yb))
         if k % 10 == 0:
             lay.texts.append((xr + k, yb + 2.6, TEXT_MM, str(k), "m"))
-    lay.texts.append((xr + ruler + 2.0, yb + 0.5, TEXT_MM, f"{ruler:g} mm ruler", "l"))
+    label = f"{ruler:g} mm ruler"
+    if xr + ruler + 2.0 + _text_width_mm(label, TEXT_MM) <= w - m:
+        lay.texts.append((xr + ruler + 2.0, yb + 0.5, TEXT_MM, label, "l"))
     # scale bar (10 mm, alternating 1 mm blocks) and a sample dot, right of the ruler
     xs = xr + ruler + 2.0 + _text_width_mm(f"{ruler:g} mm ruler", TEXT_MM) + 4.0
     d = spec.dot_diameter_mm

@@ -41,6 +41,12 @@ def test_pdf_a4_contract(tmp_path):
     assert (w, h) == pytest.approx((210 * 72 / 25.4, 297 * 72 / 25.4), abs=0.002)  # ISO 216 A4
 
 
+def test_landscape_letter_page(tmp_path):
+    info = _json([str(tmp_path / "l.pdf"), "--paper", "letter", "--landscape", "--dot-diameter-mm", "3", "--seed", "2"])
+    assert info["page_mm"] == pytest.approx([279.4, 215.9])  # ASME Y14.1 size A (11 x 8.5 in), long side across
+    assert info["n_dots"] > 0
+
+
 def test_png_dpi_and_json(tmp_path):
     out = tmp_path / "bg.png"
     info = _json([str(out), "--paper", "120x90-mm", "--dot-diameter-mm", "0.8", "--seed", "1", "--dpi", "200",

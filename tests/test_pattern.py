@@ -121,6 +121,25 @@ def test_dot_size_from_rig_thin_lens():
     assert any("dots image at 2.50 px" in n for n in spec.notes)
 
 
+def test_layout_furniture_outside_the_patterned_area():
+    for page in ((210.0, 297.0), (841.0, 1189.0), (120.0, 100.0)):
+        spec, _ = _spec(page_mm=page, dot_diameter_mm=1.0)
+        lay = P.page_layout(spec)
+        x0, y0, x1, y1 = lay.area
+        w, h = page
+        assert 0 < x0 < x1 < w and 0 < y0 < y1 < h
+        boxes = list(lay.rects) + [(cx - d / 2, cy - d / 2, cx + d / 2, cy + d / 2) for cx, cy, d in lay.discs]
+        boxes += [(x - (P._text_width_mm(t, size) if a == "m" else 0), y - size, x + P._text_width_mm(t, size), y + 0.21 * size)  # Helvetica descent 0.207 em
+                  for x, y, size, t, a in lay.texts]
+        for bx0, by0, bx1, by1 in boxes:
+            assert bx1 <= x0 or bx0 >= x1 or by1 <= y0 or by0 >= y1  # no overlap with the area
+            assert bx0 >= 0 and by0 >= 0 and bx1 <= w and by1 <= h - P.PRINT_MARGIN_MM + 1e-9
+        # four L-shaped corner markers (two arms each), the ruler's 101 ticks, seed in the footer
+        assert sum(1 for t in lay.texts if "seed 5" in t[3]) == 1
+        assert sum(1 for r in lay.rects if abs((r[2] - r[0]) - P.TICK_W_MM) < 1e-9) >= 101
+        assert any("100 %" in t[3] for t in lay.texts)
+
+
 # ---------------------------------------------------------------------------
 # dot placement
 # ---------------------------------------------------------------------------
@@ -136,6 +155,11 @@ def test_non_overlapping_dots_across_blocks_and_fill():
     rx0, ry0, rx1, ry1 = P._dot_region(spec, layout)
     fill = len(xy) * math.pi * 0.2 ** 2 / ((rx1 - rx0) * (ry1 - ry0))
     assert fill == pytest.approx(0.42, rel=0.01)
+    # rasterised (pixel centre inside a disc): the dark fraction is the fill
+    img = P.render_page(spec, layout)
+    dark = 1 - _area_pixels(spec, layout, img) / 255.0
+    assert set(np.unique(dark)) <= {0.0, 1.0}
+    assert dark.mean() == pytest.approx(0.42, abs=0.01)
     # uniform: dot density in the left and right halves agree within 4 %
     mid = 0.5 * (rx0 + rx1)
     assert np.mean(xy[:, 0] < mid) == pytest.approx(0.5, abs=0.02)
