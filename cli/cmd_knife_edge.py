@@ -121,6 +121,8 @@ def _print_summary(summary: dict[str, Any], files: list[Path]) -> None:
          "1/rad"),
         ("fit residual (rms)", num(summary["fit_residual_rms_rad"], ".3g"), "rad"),
         ("calibrated range", f"{lo:.4g} ... {hi:.4g}", "rad"),
+        ("saturates at (dark / bright)", f"{num(summary['dark_saturation_rad'], '.4g')} / "
+                                         f"{num(summary['bright_saturation_rad'], '.4g')}", "rad"),
         ("ratio noise (1 sigma)", num(summary["noise_ratio"], ".3g"), ""),
         ("dark saturated", f"{100 * summary['dark_saturated_fraction']:.1f}", "%"),
         ("bright saturated", f"{100 * summary['bright_saturated_fraction']:.1f}", "%"),

@@ -86,6 +86,8 @@ def test_lens_calibration_recovers_the_column_and_flags_saturation():
     assert fit.lens_transmission == pytest.approx(LENS["transmission"], abs=0.02)
     assert fit.dark_level == pytest.approx(0.0, abs=0.03)
     assert fit.bright_level == pytest.approx(H_M / A_M, rel=0.03)
+    dark_eps, bright_eps = fit.saturation_deflections()            # the ends of the linear law: -a/f2, (h-a)/f2
+    assert dark_eps == pytest.approx(-A_M / F2_M, rel=0.05) and bright_eps == pytest.approx((H_M - A_M) / F2_M, rel=0.05)
     lo, hi = fit.calibrated_range_rad
     assert -A_M / F2_M * 1.05 < lo < -A_M / F2_M * 0.8 and A_M / F2_M * 0.8 < hi < A_M / F2_M * 1.05
     ok = _usable(res)
@@ -148,6 +150,19 @@ def test_rotated_knife_senses_the_component_along_its_normal(angle):
     err = res.deflection_normal[ok] - eps_n[ok]
     # 5 % of the field's peak deflection (the horizontal knife sees only the small eps_y of the column)
     assert float(np.sqrt(np.mean(err ** 2))) <= 0.05 * 4e-4
+
+
+def test_blade_on_the_other_side_is_found_by_the_lens():
+    """Picture made with the normal +x, calibrated as a 270-deg knife (normal -x): the lens data give a negative
+    sensitivity and the result is the component along -x."""
+    pic, ref, eps_n, in_lens, _ = knife_scene(knife_deg=90.0, seed=9)
+    res = calibrate_knife_edge(pic, ref, knife=270, object_pixel_m=PIX_M, lens=_lens())
+    assert res.fit.sensitivity_per_rad == pytest.approx(-F2_M / A_M, rel=0.03)
+    dark_eps, bright_eps = res.fit.saturation_deflections()
+    assert dark_eps == pytest.approx(A_M / F2_M, rel=0.05)
+    ok = _usable(res)
+    assert float(np.sqrt(np.mean((res.deflection_normal[ok] + eps_n[ok]) ** 2))) <= 0.05 * PEAK_RAD
+    assert (res.saturation[(eps_n >= A_M / F2_M) & ~in_lens] == 1).mean() > 0.97      # still the bright side
 
 
 def test_knife_orientation_geometry():

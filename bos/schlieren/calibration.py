@@ -184,8 +184,16 @@ class ResponseFit:
         r = 1.0 + self.sensitivity_per_rad * np.asarray(eps_n, float)
         return np.clip(r, max(self.dark_level, 0.0), self.bright_level)
 
+    def saturation_deflections(self) -> tuple[float | None, float | None]:
+        """Deflections [rad] at which the picture reaches the dark and the bright level (None if never)."""
+        s = self.sensitivity_per_rad
+        dark = (max(self.dark_level, 0.0) - 1.0) / s
+        bright = (self.bright_level - 1.0) / s if math.isfinite(self.bright_level) else None
+        return float(dark), (None if bright is None else float(bright))
+
     def as_attrs(self) -> dict[str, Any]:
         lo, hi = self.calibrated_range_rad
+        dark_eps, bright_eps = self.saturation_deflections()
         out = {
             "method": self.method, "law": self.law,
             "sensitivity_per_rad": self.sensitivity_per_rad,
@@ -195,6 +203,7 @@ class ResponseFit:
             "lens_transmission": self.lens_transmission,
             "residual_rms": self.residual_rms, "residual_rms_rad": self.residual_rms_rad,
             "calibrated_range_rad": [lo, hi], "n_pixels": int(self.n_pixels),
+            "dark_saturation_rad": dark_eps, "bright_saturation_rad": bright_eps,
         }
         return {k: v for k, v in out.items() if v is not None}
 
@@ -273,6 +282,8 @@ class KnifeEdgeResult:
             "fit_residual_rms": self.fit.residual_rms,
             "fit_residual_rms_rad": self.fit.residual_rms_rad,
             "calibrated_range_rad": [lo, hi],
+            "dark_saturation_rad": self.fit.saturation_deflections()[0],
+            "bright_saturation_rad": self.fit.saturation_deflections()[1],
             "dark_level": self.fit.dark_level if math.isfinite(self.fit.dark_level) else None,
             "bright_level": self.fit.bright_level if math.isfinite(self.fit.bright_level) else None,
             "noise_ratio": self.noise_ratio,
