@@ -80,6 +80,20 @@ def test_cli_writes_the_periodic_set(sequence):
     assert "standing" in res.stdout and "caution:" in res.stdout
 
 
+def test_higher_harmonics_and_frame_sigma(sequence):
+    # 5 distinct phases fit a mean + 2 harmonics exactly (no residual dof): the uncertainties come from
+    # the per-frame correlation uncertainties, and a linear field has no second harmonic
+    d = sequence["dir"]
+    res = _run([str(d / "exp.toml"), "--phases", str(d / "phases.csv"), "--harmonics", "2", "--no-figures", "--json"])
+    assert res.exit_code == 0, res.output
+    s = json.loads(res.stdout)["summary"]
+    assert s["harmonics_fitted"] == 2 and s["uncertainty_from"] == "frame sigma"
+    assert s["second_to_first_harmonic_displacement"] < 0.1
+    assert s["wave_kind"] == "standing"
+    _one_line_exit_2(_run([str(d / "exp.toml"), "--phases", str(d / "phases.csv"), "--harmonics", "3"]),
+                     "at least 7 distinct phases")
+
+
 def test_failed_run_keeps_the_earlier_result(sequence, tmp_path):
     d = sequence["dir"]
     res = _run([str(d / "exp.toml"), "--phases", str(d / "phases.csv"), "--no-figures"])

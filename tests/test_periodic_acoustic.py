@@ -49,12 +49,10 @@ def _gradient(kind, p0, y, x):
     return p0 * e * dg, -1j * K_WAVE * p0 * e * g
 
 
-def render_sequence(d: Path, *, kind: str, spl_db: float, phases_deg, seed: int = 5) -> dict:
+def render_frames(d: Path, *, shape, deflection_for_phase, phases_deg, seed: int, experiment: str) -> None:
     """Reference + one frame per listed phase (16-bit PNG, camera noise), a phases CSV and an experiment file."""
     d.mkdir(parents=True, exist_ok=True)
-    p0 = float(spl_to_pressure_amplitude(spl_db))
-    f = WIDTH_M * MEDIUM.gladstone_dale / MEDIUM.ambient_index / C**2
-    bg = synthetic.random_dots(shape=SHAPE, dot_diameter_px=2.6, density=0.5, seed=seed, margin_px=20)
+    bg = synthetic.random_dots(shape=shape, dot_diameter_px=2.6, density=0.5, seed=seed, margin_px=20)
 
     def save(name, img):
         iio.imwrite(d / name, np.clip(np.round(img), 0, 65535).astype(np.uint16))
@@ -62,17 +60,29 @@ def render_sequence(d: Path, *, kind: str, spl_db: float, phases_deg, seed: int 
     save("ref.png", synthetic.render(bg, seed=seed + 1000, bit_depth=16))
     rows = ["frame,phase_deg"]
     for j, ph in enumerate(phases_deg):
-        rot = np.exp(1j * np.deg2rad(ph))
-
-        def deflection(y, x, rot=rot):
-            gy, gx = _gradient(kind, p0, y, x)
-            return f * (gy * rot).real, f * (gx * rot).real
-
-        disp = synthetic.displacement_from_field(deflection, rig=RIG, shape=SHAPE)
+        disp = synthetic.displacement_from_field(deflection_for_phase(ph), rig=RIG, shape=shape)
         save(f"frame{j:03d}.png", synthetic.render(bg, displacement=disp, seed=seed + 2000 + j, bit_depth=16))
         rows.append(f"frame{j:03d}.png,{ph:.6f}")
     (d / "phases.csv").write_text("\n".join(rows) + "\n")
-    (d / "exp.toml").write_text(EXPERIMENT)
+    (d / "exp.toml").write_text(experiment)
+
+
+def render_sequence(d: Path, *, kind: str, spl_db: float, phases_deg, seed: int = 5) -> dict:
+    """The planar beam (depth WIDTH_M along the line of sight) at the listed source phases."""
+    p0 = float(spl_to_pressure_amplitude(spl_db))
+    f = WIDTH_M * MEDIUM.gladstone_dale / MEDIUM.ambient_index / C**2
+
+    def deflection_for_phase(ph):
+        rot = np.exp(1j * np.deg2rad(ph))
+
+        def deflection(y, x):
+            gy, gx = _gradient(kind, p0, y, x)
+            return f * (gy * rot).real, f * (gx * rot).real
+
+        return deflection
+
+    render_frames(d, shape=SHAPE, deflection_for_phase=deflection_for_phase, phases_deg=phases_deg, seed=seed,
+                  experiment=EXPERIMENT)
     return {"dir": d, "p0": p0, "kind": kind}
 
 
@@ -197,3 +207,42 @@ def test_travelling_wave_is_travelling(tmp_path):
     # SPL of a travelling wave is flat along the beam: 140 dB on the centre row within 1 dB
     assert np.nanmedian(res.pressure.spl_db[row]) == pytest.approx(
         140.0 + 20 * math.log10(math.exp(-(res.y_m[row] / SIGMA_Y_M) ** 2)), abs=1.0)
+
+
+def test_axisymmetric_standing_column(tmp_path):
+    # a levitator-like column: P = P0 cos(k y + theta) exp(-(r/s)^2) about a vertical axis; its line-of-sight
+    # integral is P0 cos(k y + theta) s sqrt(pi) exp(-(x/s)^2) (Gaussian Abel projection), so
+    # eps = (K / (n0 c^2)) grad of that (exact); reconstructed by Abel inversion of each part
+    shape, s_m, spl_db = (256, 192), 4e-3, 150.0
+    p0 = float(spl_to_pressure_amplitude(spl_db))
+    f = MEDIUM.gladstone_dale / MEDIUM.ambient_index / C**2 * s_m * math.sqrt(math.pi)
+
+    def deflection_for_phase(ph):
+        a = p0 * math.cos(math.radians(ph))  # standing wave: Re(P e^{i phi}) = P cos(phi)
+
+        def deflection(y, x):
+            g = np.exp(-(x / s_m) ** 2)
+            return (f * a * -K_WAVE * np.sin(K_WAVE * y + THETA) * g,
+                    f * a * np.cos(K_WAVE * y + THETA) * (-2 * x / s_m**2) * g)
+
+        return deflection
+
+    exp_text = EXPERIMENT.replace('kind = "planar"\nreference_region = "top"',
+                                  'kind = "axisymmetric"\naxis = "vertical"\naxis_px = 95.5')
+    render_frames(tmp_path, shape=shape, deflection_for_phase=deflection_for_phase, phases_deg=np.arange(8) * 45.0,
+                  seed=41, experiment=exp_text)
+    res = _run({"dir": tmp_path})
+    s = res.summary
+    assert s["wave_kind"] == "standing"
+    # the beam axis is found (vertical profile through x = 0) and every node lies within 0.05 wavelength
+    (x0, y0), (x1, y1) = s["profile_m"]
+    assert abs(x1 - x0) < 0.02 * abs(y1 - y0) and abs(x0) < 0.3e-3
+    nodes = [n["y_m"] for n in s["nodes"]]
+    expected = [y for y in _true_nodes() if res.y_m[0] + LAMBDA / 4 < y < res.y_m[-1] - LAMBDA / 4]
+    assert len(expected) >= 4
+    for y in expected:
+        assert min(abs(np.array(nodes) - y)) < 0.05 * LAMBDA
+    for a in s["antinodes"]:  # on the axis the antinodes are at the full level
+        true_spl = 20 * math.log10(abs(p0 * math.cos(K_WAVE * a["y_m"] + THETA)) / math.sqrt(2) / 20e-6)
+        assert a["spl_db"] == pytest.approx(true_spl, abs=1.0)
+    assert len(s["antinodes"]) >= 3
