@@ -309,7 +309,8 @@ class StrobePlan:
 
 def plan_strobe(*, frequency_hz: float, pulse_width_s: float, medium=None, frame_rate_hz: float | None = None,
                 phase_steps: int | None = None, rig=None, path_m: float | None = None, spl_db: float | None = None,
-                target_spl_db: float | None = None, noise_px: float = 0.05) -> StrobePlan:
+                target_spl_db: float | None = None, spl_resolution_db: float | None = None,
+                noise_px: float = 0.05) -> StrobePlan:
     """Plan a stroboscopic or phase-locked acquisition of a periodic source.
 
     Parameters
@@ -329,6 +330,9 @@ def plan_strobe(*, frequency_hz: float, pulse_width_s: float, medium=None, frame
         displacement for ``spl_db`` and the frames needed for ``target_spl_db``.
     spl_db, target_spl_db : float, optional
         Expected sound level, and the smallest level to resolve [dB re 20 uPa].
+    spl_resolution_db : float, optional
+        Wanted 1-sigma uncertainty of the level at ``spl_db`` [dB]: the frames
+        needed are N >= 2 (20/ln 10 * noise / (amplitude * resolution))^2.
     noise_px : float
         Per-frame displacement noise [px].
 
@@ -383,6 +387,10 @@ def plan_strobe(*, frequency_hz: float, pulse_width_s: float, medium=None, frame
                                             contrast=contrast)
             signal.update(spl_db=float(spl_db), displacement_amplitude_px=amp,
                           frames_for_snr_1=frames_for_spl(amp, noise_px=noise_px) if amp > 0 else None)
+            if spl_resolution_db is not None and amp > 0:
+                res_db = _positive("SPL resolution", spl_resolution_db)
+                signal.update(spl_resolution_db=res_db, frames_for_spl_resolution=frames_for_spl(
+                    amp, noise_px=noise_px, snr=20.0 / math.log(10.0) / res_db))
             if n_frames and amp > 0:
                 sig_amp = noise_px * math.sqrt(2.0 / n_frames)
                 signal.update(frames=n_frames, amplitude_uncertainty_px=sig_amp,

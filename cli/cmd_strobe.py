@@ -61,13 +61,15 @@ def build_plan(experiment: Optional[Path], options: dict[str, Any]):
     cam = exp.camera
     rig = exp.rig() if cam.focal_length_m is not None and cam.pixel_pitch_m is not None else None
     path = exp.geometry.object_width_m
+    if options.get("spl_resolution_db") is not None and options.get("spl_db") is None:
+        raise InputError("--spl-resolution-db needs --spl-db (the level at which to reach that resolution)")
     if options.get("spl_db") is not None and (rig is None or path is None):
         raise InputError("--spl-db needs the rig: --focal-length-mm, --pixel-pitch-um, two distances and "
                          "--object-width-mm (or an experiment file)")
     plan = plan_strobe(frequency_hz=f, pulse_width_s=tau_us * 1e-6, medium=exp.medium_model(),
                        frame_rate_hz=options.get("frame_rate_hz"), phase_steps=options.get("phase_steps"),
                        rig=rig, path_m=path, spl_db=options.get("spl_db"), target_spl_db=exp.plan.target_spl_db,
-                       noise_px=exp.plan.noise_px)
+                       spl_resolution_db=options.get("spl_resolution_db"), noise_px=exp.plan.noise_px)
     flash = options.get("strobe_rate_hz") or options.get("frame_rate_hz")
     apparent = plan.aliasing["apparent_frequency_hz"] if plan.aliasing else None
     return plan, strobe_cautions(exp, frequency_hz=f, flash_rate_hz=flash, apparent_hz=apparent)
@@ -111,6 +113,7 @@ def print_plan(plan, cautions: list[str]) -> None:
     for key, label, fmt in (("displacement_amplitude_px", "displacement amplitude at {spl_db:g} dB", "{:.4g} px"),
                             ("frames_for_snr_1", "frames for amplitude = noise", "{}"),
                             ("spl_uncertainty_db", "SPL uncertainty with the phase steps", "{:.3g} dB"),
+                            ("frames_for_spl_resolution", "frames for ±{spl_resolution_db:g} dB (1σ)", "{}"),
                             ("target_displacement_amplitude_px", "displacement at target {target_spl_db:g} dB",
                              "{:.4g} px"),
                             ("frames_for_target", "frames to resolve the target level", "{}")):
@@ -137,6 +140,8 @@ def register(app: typer.Typer) -> None:
         strobe_rate_hz: Optional[float] = typer.Option(None, "--strobe-rate-hz", help="flash rate if not the frame rate (Hz)"),
         spl_db: Optional[float] = typer.Option(None, "--spl-db", help="expected sound level (dB re 20 µPa)"),
         target_spl_db: Optional[float] = typer.Option(None, "--target-spl-db", help="smallest sound level to resolve (dB)"),
+        spl_resolution_db: Optional[float] = typer.Option(None, "--spl-resolution-db",
+                                                          help="wanted 1σ SPL uncertainty at --spl-db (dB)"),
         noise_px: Optional[float] = typer.Option(None, "--noise-px", help="per-frame displacement noise (px, default 0.05)"),
         focal_length_mm: Optional[float] = typer.Option(None, "--focal-length-mm", help="lens focal length (mm)"),
         pixel_pitch_um: Optional[float] = typer.Option(None, "--pixel-pitch-um", help="sensor pixel pitch (µm)"),

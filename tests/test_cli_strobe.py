@@ -31,7 +31,8 @@ def _json(args):
 
 def test_json_holds_every_number():
     out = _json(["--frequency-hz", "40000", "--pulse-width-us", "5", "--frame-rate-hz", "999",
-                 "--phase-steps", "16", *RIG, "--spl-db", "140", "--target-spl-db", "125"])
+                 "--phase-steps", "16", *RIG, "--spl-db", "140", "--target-spl-db", "125",
+                 "--spl-resolution-db", "0.1"])
     contrast = [k for k in out if "contrast" in k]
     assert "pulse_contrast" in contrast
     assert out["pulse_contrast"] == pytest.approx(0.93549, abs=5e-6)
@@ -46,6 +47,9 @@ def test_json_holds_every_number():
     assert sig["displacement_amplitude_px"] > 0 and sig["frames_for_target"] >= 3
     assert sig["spl_uncertainty_db"] == pytest.approx(
         20 / math.log(10) * 0.05 * math.sqrt(2 / 16) / sig["displacement_amplitude_px"], rel=1e-9)
+    # sigma_L = 20/ln10 * noise sqrt(2/N) / A <= 0.1 dB  ->  N = ceil(2 (8.686 * 0.05 / (A * 0.1))^2)
+    a = sig["displacement_amplitude_px"]
+    assert sig["frames_for_spl_resolution"] == math.ceil(2 * (20 / math.log(10) * 0.05 / (a * 0.1)) ** 2)
     # cautions: airborne ultrasound exposure and strobes, ending with the deferral to local rules
     text = " ".join(out["cautions"])
     assert "ultrasound" in text and "photosensitiv" in text.lower()
