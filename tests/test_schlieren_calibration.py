@@ -207,3 +207,24 @@ def test_bad_input_is_a_clear_error():
     dark = pic.copy()
     dark[np.hypot(rr - 80, cc - 180) <= 33] = 0.01
     assert "saturated" in _err(lambda: calibrate_knife_edge(dark, ref, **kw, lens=_lens()))
+
+
+def test_camera_clipping_and_exposure_change_are_reported():
+    pic, ref, eps_n, in_lens, _ = knife_scene(peak=3e-4, seed=13)
+    burnt = pic.copy()
+    burnt[10:20, 10:30] = 1.0                                    # over-exposed patch (camera clipping)
+    res = calibrate_knife_edge(burnt, ref, knife="vertical", object_pixel_m=PIX_M, lens=_lens())
+    assert np.all(res.saturation[10:20, 10:30] == 1)
+    assert not np.any(res.saturation[40:120, 10:60])             # column region below the linear limit
+    assert not any("exposure" in w for w in res.warnings)
+    # a 6 % brighter flash for the flow picture: the ratio around the lens shows it, and a warning says so
+    res2 = calibrate_knife_edge(pic * 1.06, ref, knife="vertical", object_pixel_m=PIX_M, lens=_lens())
+    assert res2.exposure_ratio == pytest.approx(1.06, abs=0.01)
+    assert any("exposure changed" in w for w in res2.warnings)
+    # the lens focal-length uncertainty enters the stated uncertainty in proportion to the deflection
+    lens_s = CalibrationLens(LENS["center"], LENS["radius"], LENS["focal_m"], sigma_focal_length_m=0.2)
+    res0 = calibrate_knife_edge(pic, ref, knife="vertical", object_pixel_m=PIX_M, lens=_lens())
+    res3 = calibrate_knife_edge(pic, ref, knife="vertical", object_pixel_m=PIX_M, lens=lens_s)
+    big = np.isfinite(res3.deflection_normal) & (np.abs(eps_n) > 2e-4) & ~in_lens
+    extra = np.sqrt(res3.deflection_normal_uncertainty[big] ** 2 - res0.deflection_normal_uncertainty[big] ** 2)
+    assert np.allclose(extra, np.abs(res3.deflection_normal[big]) * 0.2 / LENS["focal_m"], rtol=1e-6)
