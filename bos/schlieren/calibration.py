@@ -24,7 +24,8 @@ pictures with a weak lens of long focal length [from memory].
 Hargather, M. J. & Settles, G. S. (2012). A comparison of three
 quantitative schlieren techniques. *Optics and Lasers in Engineering*
 50(1), 8-17 (lens-calibrated "Schardin" schlieren compared with BOS and
-rainbow schlieren) [abstract read; details from memory].
+rainbow schlieren) [abstract read; journal details and method details
+from memory].
 """
 
 from __future__ import annotations
@@ -337,7 +338,7 @@ def ratio_noise(ratio: np.ndarray, valid: np.ndarray) -> float:
     ----------
     Rousseeuw, P. J. & Croux, C. (1993). Alternatives to the median absolute
     deviation. *J. Am. Stat. Assoc.* 88, 1273-1283 (MAD consistency factor
-    1.4826 for Gaussian data).
+    1.4826 for Gaussian data) [from memory].
     """
     r = np.asarray(ratio, float)
     ok = valid[:, 1:] & valid[:, :-1]

@@ -22,6 +22,7 @@ Two ways to find it:
 
 References
 ----------
+(bibliographic details from memory)
 Umeyama, S. (1991). Least-squares estimation of transformation parameters
 between two point patterns. *IEEE Trans. PAMI* 13(4), 376-380.
 Padfield, D. (2012). Masked object registration in the Fourier domain.
@@ -109,7 +110,7 @@ def similarity_from_points(src_px, dst_px) -> tuple[Similarity, np.ndarray]:
 
     References
     ----------
-    Umeyama (1991), IEEE Trans. PAMI 13(4), 376-380, eqs. (34)-(42).
+    Umeyama (1991), IEEE Trans. PAMI 13(4), 376-380 (closed form with the reflection guard) [from memory].
     """
     src = np.asarray(src_px, float)
     dst = np.asarray(dst_px, float)
