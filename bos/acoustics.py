@@ -281,7 +281,7 @@ def propagation_axis(pressure, *, spacing_m) -> tuple[float, float]:
     gy, gx = gy[ok], gx[ok]
     t = np.array([[np.sum(np.abs(gy) ** 2), np.sum((gy * np.conj(gx)).real)],
                   [np.sum((gy * np.conj(gx)).real), np.sum(np.abs(gx) ** 2)]])
-    vals, vecs = np.linalg.eigh(t)
+    _, vecs = np.linalg.eigh(t)
     uy, ux = vecs[:, -1]
     if ux < 0 or (ux == 0 and uy < 0):
         uy, ux = -uy, -ux

@@ -36,18 +36,34 @@ References
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 
 from .errors import InputError
 
 __all__ = [
-    "CONTRAST_LEVELS", "pulse_contrast", "longest_pulse_for_contrast", "pulse_smear", "aliasing",
-    "Aliasing", "delay_schedule", "displacement_amplitude_px", "frames_for_spl", "StrobePlan", "plan_strobe",
-    "phases_from_list", "phases_from_frame_rate", "phases_from_timestamps", "check_phases",
-    "distinct_phases", "LockinResult", "lockin_fit",
+    "CONTRAST_LEVELS",
+    "Aliasing",
+    "LockinResult",
+    "StrobePlan",
+    "aliasing",
+    "amplitude_phase",
+    "check_phases",
+    "delay_schedule",
+    "displacement_amplitude_px",
+    "distinct_phases",
+    "frames_for_spl",
+    "lockin_fit",
+    "longest_pulse_for_contrast",
+    "phases_from_frame_rate",
+    "phases_from_list",
+    "phases_from_timestamps",
+    "plan_strobe",
+    "pulse_contrast",
+    "pulse_smear",
 ]
 
 #: contrast levels reported by the strobe planning (fractions of the full amplitude)

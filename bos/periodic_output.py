@@ -27,9 +27,10 @@ import csv
 import dataclasses
 import math
 import warnings as warnings_module
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
@@ -166,7 +167,7 @@ def _rate_warnings(origin: str, frequency_hz: float | None, frame_rate_hz: float
     return []
 
 
-def _check_frames(paths: list[Path], indices: list[int | None], name: str) -> None:
+def _check_frames(paths: list[Path], name: str) -> None:
     missing = sorted({str(p) for p in paths if not p.is_file()})
     if missing:
         shown = ", ".join(Path(m).name for m in missing[:3]) + (" ..." if len(missing) > 3 else "")
@@ -192,7 +193,7 @@ def _frame_list(source: Path) -> tuple[list[Path], list[int | None], dict[str, l
             if np.any(idx < 0) or np.any(idx != np.round(idx)):
                 raise InputError(f"{source.name}: column index must hold frame numbers 0, 1, 2 ...")
             indices = [int(i) for i in idx]
-        _check_frames(paths, indices, source.name)
+        _check_frames(paths, source.name)
         return paths, indices, table
     if not source.is_file():
         raise InputError(f"frame file not found: {source}")
@@ -795,9 +796,8 @@ def save_periodic(result: PeriodicResult, exp: Experiment) -> list[Path]:
     list of Path
         The written files, result file first.
     """
-    from . import store
+    from . import output, store
     from ._io import OutputSet
-    from . import output
     from .output import prepare_output_dir
 
     paths = periodic_paths(exp)

@@ -14,7 +14,11 @@ from cli._common import emit_json, handle_errors
 
 def _frames(options: dict[str, Any], exp):
     from bos.errors import InputError
-    from bos.periodic_output import frames_from_list, frames_from_table, read_frame_table
+    from bos.periodic_output import (
+        frames_from_list,
+        frames_from_table,
+        read_frame_table,
+    )
 
     phases, frames = options["phases"], options["frames"]
     f, rate = exp.source.frequency_hz, options["frame_rate_hz"]

@@ -90,7 +90,7 @@ def print_plan(plan, cautions: list[str]) -> None:
     t.add_column("value", justify="right")
     rows = [
         ("source frequency", f"{plan.frequency_hz:g} Hz"),
-        ("wavelength (c = {:.2f} m/s)".format(plan.speed_of_sound_m_s), f"{plan.wavelength_m * 1e3:.4g} mm"),
+        (f"wavelength (c = {plan.speed_of_sound_m_s:.2f} m/s)", f"{plan.wavelength_m * 1e3:.4g} mm"),
         ("pulse width", _us(plan.pulse_width_s)),
         ("pulse contrast sinc(π f τ)", f"{plan.pulse_contrast:.5f}"),
     ]

@@ -15,12 +15,12 @@ from pathlib import Path
 import imageio.v3 as iio
 import numpy as np
 import pytest
+from test_periodic_acoustic import EXPERIMENT, render_sequence
 from typer.testing import CliRunner
 
 from bos import periodic_output as PO
 from bos._io import file_sha256
 from cli.app import get_app
-from test_periodic_acoustic import EXPERIMENT, render_sequence
 
 
 def _run(args):
