@@ -203,10 +203,10 @@ def apply_thread_budget(threads: int | None) -> None:
         pass
     from .displacement import _deform
 
-    if not _THREADS["patched"]:
+    original = getattr(_deform, "resolve_workers", None)
+    if not _THREADS["patched"] and original is not None:
         # the estimators take "all cores" when no thread count is given; in a
         # worker that shares the machine with others that is the budget instead
-        original = _deform.resolve_workers
 
         def budget_workers(workers: int | None = None) -> int:
             if (workers is None or workers <= 0) and _THREADS["n"]:
@@ -438,17 +438,26 @@ def _dask(tasks: list[FrameTask], address: str) -> Iterator[FrameOutcome]:
         budget = _dask_threads(client)
         limit = 2 * sum(int(w.get("nthreads", 1) or 1) for w in info.values())
         queue = [dataclasses.replace(t, threads=budget) for t in reversed(tasks)]
-        first = [client.submit(process_frame, queue.pop(), pure=False) for _ in range(min(limit, len(queue)))]
-        ac = as_completed(first)
+        index: dict[str, int] = {}
+
+        def submit(task: FrameTask):
+            fut = client.submit(process_frame, task, pure=False)
+            index[fut.key] = task.index
+            return fut
+
+        ac = as_completed([submit(queue.pop()) for _ in range(min(limit, len(queue)))])
         for fut in ac:
             try:
                 out = fut.result()
             except (ImportError, AttributeError) as exc:
                 raise InputError(f"a Dask worker cannot run bos ({_one_line(exc)}): install the same "
                                  "bos-toolkit version on every worker") from None
+            except Exception as exc:  # noqa: BLE001 - e.g. a worker killed while on this frame
+                out = FrameOutcome(index=index[fut.key], status=STATUS_FAILED,
+                                   error=f"Dask: {type(exc).__name__}: {_one_line(exc)}")
             yield out
             if queue:
-                ac.add(client.submit(process_frame, queue.pop(), pure=False))
+                ac.add(submit(queue.pop()))
     finally:
         with contextlib.suppress(Exception):
             client.close()
@@ -604,7 +613,7 @@ def _clean_stale(paths: dict[str, Path]) -> None:
         with contextlib.suppress(OSError):
             tmp.unlink()
     if paths["parts"].is_dir():
-        for tmp in paths["parts"].glob(".frame-*.part.npz"):
+        for tmp in [*paths["parts"].glob(".frame-*.part.npz"), *paths["parts"].glob(".settings.*.part.json")]:
             with contextlib.suppress(OSError):
                 tmp.unlink()
 
@@ -936,6 +945,7 @@ def _join(paths, frames: FrameSet, spec: ReferenceSpec, *, n, old_series, digest
     finally:
         source.close()
     _write_table(paths["table"], records)
+    _fsync_dir(paths["series"].parent)
     return records
 
 

@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import emit_json, fail, handle_errors
 
 EXIT_SOME_FAILED = 3
 
@@ -74,7 +74,7 @@ def register(app: typer.Typer) -> None:
         as_json: bool = typer.Option(False, "--json", help="print the outcome as one JSON object"),
     ) -> None:
         """Process a sequence of frames: every frame through the `bos run` stages -> one series file."""
-        from bos.batch import run_batch
+        from bos.batch import batch_paths, run_batch
         from bos.config import load_experiment
         from bos.errors import DataFileError, InputError
         from bos.frames import parse_range, resolve_frames
@@ -90,12 +90,18 @@ def register(app: typer.Typer) -> None:
         show_bar = not as_json and sys.stderr.isatty()
         kwargs = dict(reference=reference, reference_frames=ref_set, workers=workers, scheduler=scheduler,
                       restart=restart)
-        if show_bar:
-            bar, callback = _progress_bar(len(selected.frames))
-            with bar:
-                report = run_batch(exp, selected, progress=callback, **kwargs)
-        else:
-            report = run_batch(exp, selected, **kwargs)
+        try:
+            if show_bar:
+                bar, callback = _progress_bar(len(selected.frames))
+                with bar:
+                    report = run_batch(exp, selected, progress=callback, **kwargs)
+            else:
+                report = run_batch(exp, selected, **kwargs)
+        except KeyboardInterrupt:
+            parts = batch_paths(exp)["parts"]
+            done = len(list(parts.glob("frame-*.npz"))) if parts.is_dir() else 0
+            raise fail(f"interrupted: {done} of {len(selected.frames)} frames are finished and kept; "
+                       "run the same command again to continue", code=130) from None
         if as_json:
             emit_json({
                 "series_file": str(report.series_file),

@@ -147,6 +147,19 @@ def test_natural_order_list_file_folder_and_range(tmp_path):
         resolve_frames(tmp_path, frame_range=parse_range("10:"))
 
 
+def test_multipage_tiff_pages_are_frames(tmp_path):
+    tifffile = pytest.importorskip("tifffile")
+    pages = np.arange(3 * 8 * 8, dtype=np.uint16).reshape(3, 8, 8)
+    with tifffile.TiffWriter(tmp_path / "stack.tif") as tif:
+        for page in pages:
+            tif.write(page, photometric="minisblack")
+    fs = resolve_frames(tmp_path / "stack.tif")
+    assert fs.kind == "multipage" and [f.frame for f in fs.frames] == [0, 1, 2]
+    from bos.frames import read_frame
+
+    np.testing.assert_array_equal(read_frame(fs.frames[2]).data, pages[2] / 65535.0)
+
+
 # ----------------------------------------------------------------------------- the series file
 
 
