@@ -16,19 +16,18 @@ SCENES = ("plume", "plate")
 def demo_data_dir() -> Path:
     """Directory holding the bundled demo scenes.
 
-    The repository layout (``datasets/demo`` next to the ``bos`` package, as
-    in an editable install) is used; a copy shipped inside the package
-    (``bos/data/demo``) is used when present.
+    The scenes are package data (``bos/data/demo``, written by
+    ``datasets/make_demo.py``), so editable and regular installs find them
+    from any working directory.
     """
     import bos
     from bos.errors import DataFileError
 
     pkg = Path(bos.__file__).resolve().parent
-    for cand in (pkg / "data" / "demo", pkg.parent / "datasets" / "demo"):
-        if (cand / "plume" / "experiment.toml").is_file():
-            return cand
-    raise DataFileError(f"demo data not found (looked in {pkg / 'data' / 'demo'} and {pkg.parent / 'datasets' / 'demo'}); "
-                        "install from the repository with pip install -e .")
+    cand = pkg / "data" / "demo"
+    if (cand / "plume" / "experiment.toml").is_file():
+        return cand
+    raise DataFileError(f"demo data not found in {cand}: reinstall the package (pip install bos-toolkit)")
 
 
 def compare_with_truth(result, truth_path: Path) -> dict[str, Any]:
@@ -92,9 +91,22 @@ def register(app: typer.Typer) -> None:
         bad = [s for s in scenes if s not in SCENES]
         if bad:
             raise InputError(f"unknown demo scene {', '.join(bad)}; choose from {', '.join(SCENES)}")
+        from bos.errors import DataFileError
+
         data_dir = data if data is not None else demo_data_dir()
+        missing = [s for s in scenes if not (data_dir / s / "experiment.toml").is_file()]
+        if missing:  # checked before anything is created, so a bad --data leaves nothing behind
+            raise DataFileError(f"demo data not found: {data_dir} has no {', '.join(missing)}/experiment.toml")
+        created = not out_dir.exists()
         prepare_output_dir(out_dir)
-        reports = run_demo(out_dir, data_dir=data_dir, scenes=scenes, quiet=as_json)
+        try:
+            reports = run_demo(out_dir, data_dir=data_dir, scenes=scenes, quiet=as_json)
+        except BaseException:
+            if created:
+                import shutil
+
+                shutil.rmtree(out_dir, ignore_errors=True)
+            raise
         if as_json:
             emit_json(jsonable({"output": str(out_dir.resolve()), "scenes": reports}))
             return

@@ -226,7 +226,6 @@ window_px = 64
 final_window_px = 16
 passes = 3
 overlap = 0.5
-camera_motion = "{camera_motion}"
 
 [reconstruction]
 {recon}
@@ -262,7 +261,7 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
         y_prof = y_m[int(0.8 * (len(y_m) - 1))]
         extra = dict(
             title="Hot plume above a soldering-iron tip (axisymmetric, vertical axis)",
-            width_line="", mask_line="", source_kind="plume", camera_motion="none",
+            width_line="", mask_line="", source_kind="plume",
             description="soldering iron, tip just below the bottom edge of the picture",
             recon=f'kind = "axisymmetric"\naxis = "vertical"\naxis_px = {(shape[1] - 1) / 2:g}\n',
             profile=f"[[{_fmt_mm(x_m[0] * 0.6)}, {_fmt_mm(y_prof)}], [{_fmt_mm(x_m[-1] * 0.6)}, {_fmt_mm(y_prof)}]]",
@@ -282,8 +281,7 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
             title="Heated vertical plate in a span-wise 2-D enclosure (planar boundary layer)",
             width_line=f"object_width_mm = {SCENES['plate']['width_m'] * 1e3:g}\n",
             mask_line='mask = "mask.png"\n', source_kind="hot-air",
-            # the camera shift is measured where the gas is ambient (the reference region)
-            camera_motion="mask",
+            # the camera nudge is found by the default flow-aware fit in the reference region
             description="electrically heated aluminium plate, 100 mm deep enclosure with glass side walls",
             recon='kind = "planar"\nreference_region = "right"\nboundary = "neumann"\n',
             profile=f"[[{_fmt_mm(x_wall)}, {_fmt_mm(y_prof)}], [{_fmt_mm(x_m[-1])}, {_fmt_mm(y_prof)}]]",
@@ -324,14 +322,14 @@ def make_scene(scene: str, out_dir: Path, *, shape=DEFAULT_SHAPE) -> Path:
     return toml_path
 
 
-def generate(out_dir: Path = HERE / "demo", *, shape=DEFAULT_SHAPE, scenes=tuple(SCENES)) -> list[Path]:
+def generate(out_dir: Path = HERE.parent / "bos" / "data" / "demo", *, shape=DEFAULT_SHAPE, scenes=tuple(SCENES)) -> list[Path]:
     """Render every scene; return the experiment files."""
     return [make_scene(s, out_dir, shape=shape) for s in scenes]
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("out", nargs="?", default=str(HERE / "demo"))
+    ap.add_argument("out", nargs="?", default=str(HERE.parent / "bos" / "data" / "demo"))
     ap.add_argument("--rows", type=int, default=DEFAULT_SHAPE[0])
     ap.add_argument("--cols", type=int, default=DEFAULT_SHAPE[1])
     ap.add_argument("--scene", action="append", choices=sorted(SCENES))
