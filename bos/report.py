@@ -168,6 +168,10 @@ def summary_rows(attrs: Mapping[str, Any], *, axis=None) -> list[tuple[str, str,
     asym = summary.get("asymmetry")
     if asym is not None:
         rows.append(("asymmetry of the two halves (rms / peak)", _plain(asym), ""))
+    known = {r[0] for r in SUMMARY_ROWS} | {"asymmetry", "warnings"}
+    for key, value in summary.items():           # anything else the run recorded, under its own name
+        if key not in known and value is not None and value != [] and value != {}:
+            rows.append((key.replace("_", " "), _plain(value), ""))
     if axis is not None:
         coord = "x" if axis.orientation == "vertical" else "y"
         rows.append((f"fitted symmetry axis ({axis.orientation}), {coord}", _number(axis.m * 1e3, ".4g"), "mm"))
@@ -344,8 +348,8 @@ def write_report(source: Any, path: str | os.PathLike | None = None, *, name: st
             raise InputError("give the report's output path (the result is not a file)")
         path = default_report_path(source)
     out = Path(path)
-    if isinstance(source, (str, os.PathLike)) and Path(source).exists() and out.exists() \
-            and out.resolve() == Path(source).resolve():
+    if isinstance(source, (str, os.PathLike)) and out.exists() and Path(source).exists() \
+            and os.path.samefile(out, source):                      # the same file, also through links
         raise InputError(f"the report path {out} is the result file itself; choose another --out")
     if out.suffix.lower() not in (".html", ".htm"):
         raise InputError(f"the report is an HTML page: give a .html path, got {out.name}")

@@ -31,10 +31,8 @@ def register(app: typer.Typer) -> None:
           bos report out/plume.nc --out plume.html --no-figures
         """
         from bos import report as rep
-        from cli.cmd_export import refuse_overwriting_input
 
         target = Path(out) if out is not None else rep.default_report_path(result)
-        refuse_overwriting_input(target, result)
         written = rep.write_report(result, target, figures=figures)
         if as_json:
             emit_json({"file": str(written)})
