@@ -706,34 +706,50 @@ def _paint_discs(dark: np.ndarray, row0: int, pitch: float, xy: np.ndarray, d: f
 
     A pixel takes the dot's darkness at its centre: hard dots are black where
     the pixel centre lies within ``d/2`` of the dot centre, so the expected
-    dark area equals the disc area for any dot position.
+    dark area equals the disc area for any dot position.  Stencil pixels
+    inside the disc for every sub-pixel position of the centre are painted
+    without a distance test; only the rim is tested.
     """
     if xy.size == 0:
         return
     nr, nc = dark.shape
     reach = (0.75 if soft else 0.5) * d / pitch  # in pixels
-    h = int(math.ceil(reach)) + 1
-    off = np.arange(-h, h + 1, dtype=np.float32)
+    h = int(math.ceil(reach + 0.5))
+    off = np.arange(-h, h + 1)
     oy, ox = (a.ravel() for a in np.meshgrid(off, off, indexing="ij"))
-    oyi, oxi = oy.astype(np.int32), ox.astype(np.int32)
+    ay, ax = np.abs(oy) - 0.5, np.abs(ox) - 0.5
+    maybe = np.maximum(ax, 0) ** 2 + np.maximum(ay, 0) ** 2 <= reach * reach
+    sure = np.zeros_like(maybe) if soft else (ax + 1) ** 2 + (ay + 1) ** 2 <= reach * reach
+    rim = maybe & ~sure
     r0c, r1c, c0c, c1c = clip if clip is not None else (0, nr, 0, nc)
-    chunk = max(1, 1_000_000 // off.size ** 2)
     flat = dark.reshape(-1)
+    chunk = max(1, 1_000_000 // int(maybe.sum()))
+
+    def put(rows, cols, val=None):
+        ok = (rows >= r0c) & (rows < r1c) & (cols >= c0c) & (cols < c1c)
+        idx = rows[ok] * nc + cols[ok]
+        if val is None:
+            flat[idx] = 1.0
+        else:
+            np.maximum.at(flat, idx, val[ok])
+
+    oy_s, ox_s = oy[sure], ox[sure]
+    oy_r, ox_r = oy[rim], ox[rim]
+    oy_rf, ox_rf = oy_r.astype(np.float32), ox_r.astype(np.float32)
     for s in range(0, len(xy), chunk):
         u, v = xy[s:s + chunk, 0] / pitch, xy[s:s + chunk, 1] / pitch  # centre in pixel units
         ci, ri = np.floor(u), np.floor(v)
+        cii, rii = ci.astype(np.int64), ri.astype(np.int64) - row0
+        if oy_s.size:
+            put((rii[:, None] + oy_s[None, :]).ravel(), (cii[:, None] + ox_s[None, :]).ravel())
         fx, fy = (ci + 0.5 - u).astype(np.float32), (ri + 0.5 - v).astype(np.float32)
-        dist2 = (fx[:, None] + ox[None, :]) ** 2 + (fy[:, None] + oy[None, :]) ** 2
+        dist2 = (fx[:, None] + ox_rf[None, :]) ** 2 + (fy[:, None] + oy_rf[None, :]) ** 2
         k, j = np.nonzero(dist2 <= np.float32(reach * reach))
-        rows = ri.astype(np.int64)[k] + oyi[j] - row0
-        cols = ci.astype(np.int64)[k] + oxi[j]
-        ok = (rows >= r0c) & (rows < r1c) & (cols >= c0c) & (cols < c1c)
-        idx = rows[ok] * nc + cols[ok]
+        rows, cols = rii[k] + oy_r[j], cii[k] + ox_r[j]
         if soft:
-            val = soft_profile(np.sqrt(dist2[k[ok], j[ok]]) * pitch, d)
-            np.maximum.at(flat, idx, val)
+            put(rows, cols, soft_profile(np.sqrt(dist2[k, j]) * pitch, d))
         else:
-            flat[idx] = 1.0
+            put(rows, cols)
 
 
 def _text_bitmap(text: str, size_px: float) -> tuple[np.ndarray, int, int]:
@@ -783,7 +799,7 @@ def render_bands(spec: PatternSpec, layout: Layout | None = None, *,
     exhausted = spec.kind != "dots"
     for b0 in range(0, nrows, band_rows):
         b1 = min(b0 + band_rows, nrows)
-        dark = np.zeros((b1 - b0, ncols))
+        dark = np.zeros((b1 - b0, ncols), dtype=np.float32)
         ylo, yhi = b0 * p - reach - p, b1 * p + reach + p
         r0c, r1c = max(ar0, b0) - b0, min(ar1, b1) - b0
         if r1c > r0c and ac1 > ac0:
@@ -812,7 +828,9 @@ def render_bands(spec: PatternSpec, layout: Layout | None = None, *,
             if rb > ra and cb > ca:
                 sub = dark[ra - b0:rb - b0, ca:cb]
                 np.maximum(sub, patch[ra - pr:rb - pr, ca - pc:cb - pc], out=sub)
-        yield np.rint(255.0 * (1.0 - dark)).astype(np.uint8)
+        np.subtract(np.float32(1.0), dark, out=dark)
+        dark *= np.float32(255.0)
+        yield np.rint(dark, out=dark).astype(np.uint8)
 
 
 def render_page(spec: PatternSpec, layout: Layout | None = None) -> np.ndarray:
