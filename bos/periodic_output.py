@@ -526,6 +526,9 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
     summary: dict[str, Any] = {
         "frames": len(frames), "distinct_phases": n_distinct, "phase_origin": frames.origin,
         "harmonics_fitted": int(harmonics), "uncertainty_from": fit_y.uncertainty_source,
+        "uncertainty_note": "1-sigma values cover the random frame-to-frame error only; the smoothing of the "
+                            "correlation windows (window_attenuation_db) and errors repeated in every frame are "
+                            "not included",
         "grid_shape": [int(v) for v in a_y.shape],
         "valid_fraction": float((~masked & ~invalid).sum() / max(1, (~masked).sum())),
         "peak_displacement_amplitude_px": _finite(np.nanmax(amp_mag)),

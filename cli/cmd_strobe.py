@@ -35,7 +35,8 @@ def strobe_cautions(exp, *, frequency_hz: float, flash_rate_hz: float | None, ap
     kind = exp.source.kind if exp.source.kind not in ("none", "other") else (
         "ultrasound" if frequency_hz >= 20e3 else "other")
     light = exp.source.illumination if exp.source.illumination in ("strobe", "flash") else "strobe"
-    out = cautions_for(kind, "ambient", frequency_hz=frequency_hz)[:-1]
+    # the source, the experiment's own illumination (laser, LED ...), then the strobe with its flash rate
+    out = cautions_for(kind, exp.source.illumination, frequency_hz=frequency_hz)[:-1]
     out += cautions_for("none", light, frequency_hz=flash_rate_hz)[:-1]
     if apparent_hz is not None and 3.0 <= abs(apparent_hz) <= 30.0:
         out.append(f"The pattern rolls at {abs(apparent_hz):.3g} Hz, inside the 3-30 Hz photosensitive band: "

@@ -83,3 +83,29 @@ def test_bad_input_one_line_exit_2(args):
     res = _run(args)
     assert res.exit_code == 2, res.output
     assert len(res.stderr.strip().splitlines()) == 1 and res.stderr.startswith("error:")
+
+
+def test_experiment_file_supplies_source_rig_and_illumination(tmp_path):
+    exp = tmp_path / "exp.toml"
+    exp.write_text("""
+[camera]
+focal_length_mm = 50
+pixel_pitch_um = 5
+[geometry]
+camera_to_object_m = 1.0
+object_to_background_m = 0.5
+object_width_mm = 100
+[source]
+kind = "ultrasound"
+illumination = "laser"
+frequency_hz = 40000
+[plan]
+target_spl_db = 130
+""")
+    out = _json([str(exp), "--pulse-width-us", "12.5", "--spl-db", "140"])
+    assert out["frequency_hz"] == 40000 and out["pulse_contrast"] == pytest.approx(2 / math.pi, abs=1e-12)
+    assert out["signal"]["target_spl_db"] == 130 and out["signal"]["frames_for_target"] >= 3
+    # the file's laser gets its own caution next to the strobe and ultrasound ones (IEC 60825-1)
+    assert any("IEC 60825-1" in c for c in out["cautions"]) and out["cautions"][-1] == safety.DEFER
+    # an option overrides the file
+    assert _json([str(exp), "--pulse-width-us", "1", "--frequency-hz", "20000"])["frequency_hz"] == 20000
