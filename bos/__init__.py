@@ -16,3 +16,4 @@ try:  # one place for the version: pyproject.toml, read back from the installed 
     __version__ = _version("bos-toolkit")
 except _PackageNotFoundError:  # pragma: no cover - a source tree that was never installed
     __version__ = "0+unknown"
+from .store import open_result  # noqa: E402,F401 - bos.open_result(path) -> xarray.Dataset

@@ -1,4 +1,4 @@
-"""Writing a run: the HDF5 result, the profile CSV and the figures."""
+"""Writing a run: the netCDF-4 result file, the profile CSV and the figures."""
 
 from __future__ import annotations
 
@@ -35,20 +35,29 @@ def prepare_output_dir(directory: str | Path) -> Path:
 
 def output_paths(exp: Experiment) -> dict[str, Path]:
     """Where :func:`save_run` writes each file for ``exp`` (relative directories
-    are taken relative to the experiment file, like the image paths)."""
+    are taken relative to the experiment file, like the image paths).  The
+    result file is netCDF-4 (``<name>.nc``)."""
     d = exp.resolve(exp.output.directory)
     name = exp.output.name
     return {
-        "result": d / f"{name}.h5",
+        "result": d / f"{name}.nc",
         "profile_csv": d / f"{name}-profile.csv",
         "fig_displacement": d / f"{name}-displacement.png",
         "fig_deflection": d / f"{name}-deflection.png",
         "fig_density": d / f"{name}-density.png",
         "fig_profile": d / f"{name}-profile.png",
+        "fig_acoustic": d / f"{name}-acoustic.png",  # written only for sound sources (acoustic pressure)
     }
 
 
-Y_DOWN_NOTE = "object-plane coordinate; y points DOWN (grows with image row), origin at the image centre"
+#: How result files orient their coordinates (global attribute ``coordinate_note``).
+COORDINATE_NOTE = ("object-plane coordinates in metres, origin at the image centre; x points right (grows with "
+                   "the image column), y points UP (the image row index row_px grows the other way), so a plain "
+                   "plot of a field shows the picture upright")
+#: Old name of :data:`COORDINATE_NOTE` (kept for callers that import it).
+Y_DOWN_NOTE = COORDINATE_NOTE
+_PIXEL_COMMENT = ("count of sensor pixels (dimensionless, CF units '1'; display unit px); one pixel is the "
+                  "camera's pixel pitch on the sensor (global attribute rig, key pixel_pitch_m)")
 
 
 def _var(data, units: str, long_name: str, **extra) -> dict[str, Any]:
@@ -56,40 +65,58 @@ def _var(data, units: str, long_name: str, **extra) -> dict[str, Any]:
     return {"dims": ("y", "x"), "data": np.asarray(data), "attrs": attrs}
 
 
-def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, Any], dict[str, Any]]:
-    """Coordinates and data variables of the HDF5 result (name -> dims, data, attrs).
+def _px(data, long_name: str) -> dict[str, Any]:
+    """A field counted in sensor pixels: CF units "1" (UDUNITS and pint read "px" as something else)."""
+    return _var(data, "1", long_name, display_units="px", comment=_PIXEL_COMMENT)
 
-    Every variable carries ``units`` and ``long_name``; CF standard names are
-    used where one exists (air_density, air_temperature for air).
+
+def file_y(y_down_m) -> np.ndarray:
+    """Object-plane y of the library (down, grows with the image row) -> y of result files (up) [m]."""
+    return -np.asarray(y_down_m, dtype=float)
+
+
+def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, Any], dict[str, Any]]:
+    """Coordinates and data variables of the result file (name -> dims, data, attrs).
+
+    Every variable carries ``units`` (UDUNITS; pixel counts are "1" with
+    ``display_units = "px"``) and ``long_name``; CF standard names are used
+    where one exists (air_density, air_temperature for air).  The file's
+    ``y`` points UP (``y = -y_m`` of the run, :func:`file_y`), so the
+    ``*_y`` components are stored in that direction too: ``displacement_y``
+    and ``deflection_y`` are positive upward.  Array rows keep the image row
+    order (``row_px``).
     """
     disp = result.displacement
     coords = {
-        "y": {"dims": ("y",), "data": np.asarray(result.y_m, float),
-              "attrs": {"units": "m", "long_name": "object-plane y (down)", "positive": "down",
-                        "description": Y_DOWN_NOTE}},
+        "y": {"dims": ("y",), "data": file_y(result.y_m),
+              "attrs": {"units": "m", "long_name": "object-plane y (up)", "axis": "Y",
+                        "description": "object-plane coordinate; y points up (the image row index row_px grows "
+                                       "the other way), origin at the image centre"}},
         "x": {"dims": ("x",), "data": np.asarray(result.x_m, float),
-              "attrs": {"units": "m", "long_name": "object-plane x (right)",
+              "attrs": {"units": "m", "long_name": "object-plane x (right)", "axis": "X",
                         "description": "object-plane coordinate; x points right (grows with image column), "
                                        "origin at the image centre"}},
         "row_px": {"dims": ("y",), "data": np.asarray(disp.rows, float),
-                   "attrs": {"units": "px", "long_name": "image row of the vector-grid point"}},
+                   "attrs": {"units": "1", "display_units": "px",
+                             "long_name": "image row of the vector-grid point (pixel index, 0 = top row)"}},
         "col_px": {"dims": ("x",), "data": np.asarray(disp.cols, float),
-                   "attrs": {"units": "px", "long_name": "image column of the vector-grid point"}},
+                   "attrs": {"units": "1", "display_units": "px",
+                             "long_name": "image column of the vector-grid point (pixel index, 0 = left column)"}},
     }
-    flag = {"flag_values": np.array([0, 1], np.uint8)}
     v = {
-        "displacement_y": _var(disp.dy, "px", "apparent background displacement, y component (sensor pixels)"),
-        "displacement_x": _var(disp.dx, "px", "apparent background displacement, x component (sensor pixels)"),
-        "displacement_magnitude": _var(np.hypot(disp.dy, disp.dx), "px", "apparent background displacement magnitude"),
-        "displacement_y_uncertainty": _var(disp.sigma_dy, "px", "1-sigma uncertainty of displacement_y"),
-        "displacement_x_uncertainty": _var(disp.sigma_dx, "px", "1-sigma uncertainty of displacement_x"),
-        "deflection_y": _var(result.eps_y, "rad", "light-ray deflection angle, y component (toward higher index)"),
+        "displacement_y": _px(-np.asarray(disp.dy), "apparent background displacement, y component (up)"),
+        "displacement_x": _px(disp.dx, "apparent background displacement, x component (right)"),
+        "displacement_magnitude": _px(np.hypot(disp.dy, disp.dx), "apparent background displacement magnitude"),
+        "displacement_y_uncertainty": _px(disp.sigma_dy, "1-sigma uncertainty of displacement_y"),
+        "displacement_x_uncertainty": _px(disp.sigma_dx, "1-sigma uncertainty of displacement_x"),
+        "deflection_y": _var(-np.asarray(result.eps_y), "rad",
+                             "light-ray deflection angle, y component (up; toward higher index)"),
         "deflection_x": _var(result.eps_x, "rad", "light-ray deflection angle, x component (toward higher index)"),
-        "masked": _var(np.asarray(disp.masked, np.uint8), "1", "user mask: 1 = no data requested here",
-                       flag_meanings="measured masked", **flag),
-        "invalid": _var(np.asarray(invalid_flags(disp, result.density), np.uint8), "1",
+        "masked": _var(np.asarray(disp.masked, bool), "1", "user mask: 1 = no data requested here",
+                       flag_meanings="measured masked"),
+        "invalid": _var(np.asarray(invalid_flags(disp, result.density), bool), "1",
                         "validation: 1 = vector rejected (outlier, no correlation peak, not reconstructable)",
-                        flag_meanings="valid rejected", **flag),
+                        flag_meanings="valid rejected"),
     }
     dens = result.density
     if dens is not None:
@@ -116,13 +143,13 @@ def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, 
 
 
 def _default_profile(result: RunResult) -> list[list[float]]:
-    """Horizontal line through the middle of the field [m]."""
+    """Horizontal line through the middle of the field [m] (run coordinates, y down)."""
     y_mid = float(result.y_m[len(result.y_m) // 2])
     return [[float(result.x_m[0]), y_mid], [float(result.x_m[-1]), y_mid]]
 
 
 def as_result_data(result: RunResult, *, gas: str = "air"):
-    """The run as an in-memory :class:`bos.store.ResultData` (same content as the file)."""
+    """The run as an in-memory :class:`bos.store.ResultData` (same content and orientation as the file)."""
     from .store import ResultData, Variable
 
     coords, variables = result_variables(result, gas=gas)
@@ -142,14 +169,14 @@ def sample_profile(data, line_m, *, names: tuple[str, ...] = PROFILE_FIELDS) -> 
     data : bos.store.ResultData
         A result (from :func:`as_result_data` or :func:`bos.store.read_result`).
     line_m : [[x0, y0], [x1, y1]]
-        End points in object-plane metres (y down).
+        End points in the result's coordinates [m] (result files: y up).
     names : tuple of str
         Fields to sample; their ``*_uncertainty`` companions are added where present.
 
     Returns
     -------
     dict
-        ``name -> (values, units)`` starting with ``s_m``, ``x_m``, ``y_m``; NaN outside the grid.
+        ``name -> (values, display units)`` starting with ``s_m``, ``x_m``, ``y_m``; NaN outside the grid.
     """
     from . import store
 
@@ -166,23 +193,89 @@ def sample_profile(data, line_m, *, names: tuple[str, ...] = PROFILE_FIELDS) -> 
     return out
 
 
-def write_profile_csv(path: str | Path, samples: dict[str, tuple[np.ndarray, str]]) -> Path:
+def write_profile_csv(path, samples: dict[str, tuple[np.ndarray, str]]):
     """Write profile samples (from :func:`sample_profile`) as CSV, atomically.
 
-    One header line of column names (units as in the result file: ``s_m``,
-    ``x_m``, ``y_m`` in metres, then the fields); NaN written as ``nan``.
+    One header line ``name [units]``: ``s [m]`` (distance from the start),
+    ``x [m]``, ``y [m]``, then the fields; NaN written as ``nan``.  ``path``
+    may be ``"-"`` for standard output or an open text stream.
     """
-    from ._io import atomic_path
+    from .store import csv_label, write_table
 
-    header = ",".join(samples)
-    table = np.column_stack([v for v, _ in samples.values()])
-    with atomic_path(path) as tmp:
-        np.savetxt(tmp, table, delimiter=",", header=header, comments="", fmt="%.9g")
-    return Path(path)
+    labels = [csv_label(k, units) for k, (_, units) in samples.items()]
+    return write_table(path, labels, [v for v, _ in samples.values()], fmt="%.9g")
+
+
+def _experiment_text(exp: Experiment) -> str:
+    """Full text of the experiment file (or a note when the run came from options only)."""
+    src = getattr(exp, "source_file", None)
+    if not src:
+        return "(none: run from command-line options; the settings are in the camera, geometry, medium, " \
+               "processing, reconstruction and flow_source attributes)"
+    try:
+        return Path(src).read_text(encoding="utf-8", errors="replace")
+    except OSError as exc:
+        return f"(experiment file {src} could not be read again when saving: {exc.strerror or exc})"
+
+
+def _references(attrs: dict[str, Any]) -> str:
+    """The published methods this run used, one per line (CF global attribute ``references``)."""
+    proc = attrs.get("processing") or {}
+    rec = attrs.get("reconstruction") or {}
+    refs = ["Richard, H. and Raffel, M. (2001). Principle and applications of the background oriented schlieren "
+            "(BOS) method. Meas. Sci. Technol. 12, 1576-1585.",
+            "Raffel, M. (2015). Background-oriented schlieren (BOS) techniques. Exp. Fluids 56, 60."]
+    if proc.get("method", "correlation") == "flow":
+        refs += ["Lucas, B. D. and Kanade, T. (1981). An iterative image registration technique with an "
+                 "application to stereo vision. Proc. IJCAI, 674-679."]
+    else:
+        refs += ["Scarano, F. (2002). Iterative image deformation methods in PIV. Meas. Sci. Technol. 13, R1-R19.",
+                 "Westerweel, J. and Scarano, F. (2005). Universal outlier detection for PIV data. "
+                 "Exp. Fluids 39, 1096-1100.",
+                 "Wieneke, B. (2015). PIV uncertainty quantification from correlation statistics. "
+                 "Meas. Sci. Technol. 26, 074002."]
+    kind = rec.get("kind")
+    if kind == "axisymmetric":
+        refs += ["Dasch, C. J. (1992). One-dimensional tomography: a comparison of Abel, onion-peeling, and "
+                 "filtered backprojection methods. Appl. Opt. 31, 1146-1152."]
+    elif kind == "planar":
+        refs += ["Simchony, T., Chellappa, R. and Shao, M. (1990). Direct analytical methods for solving Poisson "
+                 "equations in computer vision problems. IEEE Trans. Pattern Anal. Mach. Intell. 12, 435-446."]
+    if kind in ("axisymmetric", "planar"):
+        refs += ["Merzkirch, W. (1987). Flow Visualization, 2nd ed. Academic Press (Gladstone-Dale relation).",
+                 "Ciddor, P. E. (1996). Refractive index of air: new equations for the visible and near infrared. "
+                 "Appl. Opt. 35, 1566-1573."]
+    return "\n".join(refs)
+
+
+def file_attributes(result: RunResult, exp: Experiment, *, line_file_m) -> dict[str, Any]:
+    """Global attributes of a run's result file: CF ``title``/``history``/``source``/``references``,
+    the experiment-file text, the profile line and the run's provenance (nested, stored as JSON)."""
+    import bos
+
+    attrs = dict(result.attrs)
+    if "source" in attrs:  # the experiment's [source] section; CF reserves "source" for a text
+        attrs["flow_source"] = attrs.pop("source")
+    proc = attrs.get("processing") or {}
+    rec = attrs.get("reconstruction") or {}
+    attrs.update({
+        "title": f"BOS result {exp.output.name}",
+        "Conventions": "CF-1.8",
+        "source": (f"background-oriented schlieren measurement processed with bos-toolkit {bos.__version__} "
+                   f"(displacement: {proc.get('method', 'correlation')}; reconstruction: {rec.get('kind', 'none')}"
+                   + (f", {rec.get('abel_method')}" if rec.get("kind") == "axisymmetric" and rec.get("abel_method")
+                      else "") + ")"),
+        "references": _references(attrs),
+        "coordinate_note": COORDINATE_NOTE,
+        "run_name": exp.output.name,
+        "experiment_file_text": _experiment_text(exp),
+        "profile_line_m": np.asarray(line_file_m, float).ravel(),
+    })
+    return attrs
 
 
 def save_run(result: RunResult, exp: Experiment) -> list[Path]:
-    """Write the HDF5 result, the figures and the profile CSV of a run.
+    """Write the result file (netCDF-4, ``<name>.nc``), the figures and the profile CSV of a run.
 
     The files of one run form a transaction (:class:`bos._io.OutputSet`):
     they are written into a hidden staging folder beside the destination
@@ -191,7 +284,9 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     carries the same ``run_id`` attribute).  A failure or interruption
     leaves the earlier set of that name untouched; a crash during the swap
     is completed by the next run.  Figures are skipped when
-    ``output.figures = false``.
+    ``output.figures = false``.  The profile line of the experiment (run
+    coordinates, y down) is stored in the file's coordinates (y up) as the
+    attribute ``profile_line_m`` = [x0, y0, x1, y1].
 
     Returns
     -------
@@ -209,18 +304,17 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     prepare_output_dir(paths["result"].parent)
     gas = exp.medium.gas if not exp.medium.composition else "mixture"
     coords, variables = result_variables(result, gas=gas)
-    attrs = dict(result.attrs)
-    attrs["coordinate_note"] = Y_DOWN_NOTE
-    attrs["title"] = f"BOS result {exp.output.name}"
-    attrs["Conventions"] = "CF-1.8"
+    line = exp.output.profile or _default_profile(result)
+    line_file = [[float(x), float(file_y(y))] for x, y in line]
+    attrs = file_attributes(result, exp, line_file_m=line_file)
     from ._io import OutputSet
 
     run_id = attrs.get("run_id")
     with OutputSet(paths["result"].parent, exp.output.name, run_id=run_id) as out:
         attrs["run_id"] = out.run_id
-        store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs)
-        line = exp.output.profile or _default_profile(result)
-        samples = sample_profile(as_result_data(result, gas=gas), line)
+        store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs,
+                           history=f"bos run from {exp.source_file or 'command-line options'}")
+        samples = sample_profile(as_result_data(result, gas=gas), line_file)
         write_profile_csv(out.path(paths["profile_csv"]), samples)
         if exp.output.figures:
             staged = {k: (out.path(v) if k.startswith("fig_") else v) for k, v in paths.items()}

@@ -1,24 +1,33 @@
-"""Result files: netCDF4/CF-compatible HDF5 (h5py), CSV export and line profiles.
+"""Result files: netCDF-4 / CF-1.8 files (written with h5netcdf), CSV export and line profiles.
 
 The layout is described in ``docs/file-format.md``.  In short: every
-coordinate is an HDF5 dimension scale, every variable is attached to the
-scales of its dimensions and carries ``units`` and ``long_name`` (CF
-``standard_name`` where one exists), boolean flags are stored as uint8 with
-``flag_values``/``flag_meanings``, and nested attribute dictionaries are
-flattened to ``prefix.key`` scalar attributes (values that are not numbers,
-strings or numeric 1-D arrays become JSON strings).  Files are written
-through :func:`bos._io.atomic_path` (temporary file + rename) and open with
-``xarray.open_dataset(path, engine="h5netcdf")``.
+coordinate is a netCDF dimension coordinate (HDF5 dimension scale), every
+variable carries ``units`` (UDUNITS strings) and ``long_name`` (CF
+``standard_name`` where one exists), boolean flags are stored as signed
+bytes with ``flag_values``/``flag_meanings``, and global attributes whose
+value is not a number, a string or a numeric 1-D array (nested provenance
+dictionaries, lists of strings, booleans) are stored as JSON text; the
+attribute ``bos_json_attributes`` names them so that the readers restore
+them.  Files are written through :func:`bos._io.atomic_path` (temporary file
++ rename).  :func:`open_result` returns an :class:`xarray.Dataset`;
+:func:`read_result` reads without xarray.
+
+Both readers refuse files that would make them read other files (HDF5
+external links, external raw storage, virtual datasets) and files whose
+declared array sizes exceed a cap, before any data are read.
 """
 
 from __future__ import annotations
 
+import datetime
 import json
 import math
 import os
+import re
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping, Sequence
+from typing import IO, Any, Mapping, Sequence
 
 import numpy as np
 
@@ -28,21 +37,35 @@ from .errors import DataFileError, InputError
 __all__ = [
     "FORMAT_NAME",
     "CF_STANDARD_NAMES",
+    "MAX_READ_BYTES",
     "Variable",
     "ResultData",
     "Profile",
     "write_result",
     "read_result",
+    "open_result",
+    "check_result_file",
     "file_sha256",
     "export_csv",
     "profile",
     "export_profile_csv",
+    "csv_label",
+    "display_units",
+    "write_table",
 ]
 
 #: Value of the global ``bos_file_format`` attribute that marks a result file.
-FORMAT_NAME = "bos-toolkit result 1"
+FORMAT_NAME = "bos-toolkit result 2"
+#: Earlier format (nested attributes flattened to dotted names, y down, .h5); still read.
+_OLD_FORMATS = ("bos-toolkit result 1",)
 _JSON_LIST_ATTR = "bos_json_attributes"
-_SEP = "."
+_OLD_SEP = "."
+#: Default cap on what a reader allocates from a file's declared array shapes [bytes].
+MAX_READ_BYTES = 2 * 1024**3
+_NAME_RE = re.compile(r"[A-Za-z][A-Za-z0-9_]*\Z")
+# attributes written by the netCDF/HDF5 layers, not part of the data model
+_INTERNAL_ATTRS = ("CLASS", "NAME", "REFERENCE_LIST", "DIMENSION_LIST", "_Netcdf4Dimid", "_Netcdf4Coordinates",
+                   "_NCProperties", "_nc3_strict")
 
 #: CF standard names (CF standard-name table) for the quantities that have
 #: one.  The writer does not add them by itself: ``air_density`` and
@@ -73,10 +96,11 @@ class ResultData:
     coords : dict[str, Variable]
         Dimension coordinates (name == dimension) and auxiliary coordinates.
     variables : dict[str, Variable]
-        Data variables; flags (uint8 with ``flag_values`` 0/1) are returned
-        as boolean arrays.
+        Data variables; flags (``flag_values`` 0/1) are returned as boolean
+        arrays.
     attrs : dict
-        Global attributes, un-flattened back to nested dictionaries.
+        Global attributes, JSON-encoded ones decoded back to dictionaries
+        and lists.
     """
 
     coords: dict[str, Variable]
@@ -93,7 +117,7 @@ class ResultData:
 
 @dataclass
 class Profile:
-    """Samples of one field along a straight line in object-plane metres."""
+    """Samples of one field along a straight line in the result's coordinates [m]."""
 
     variable: str
     units: str
@@ -125,7 +149,7 @@ def _as_variable(name: str, spec: Any, *, coord: bool) -> Variable:
     if isinstance(dims, str) or dims is None:
         raise InputError(f"{name!r}: dims must be a tuple of dimension names, got {dims!r}")
     arr = np.asarray(data)
-    dims = tuple(str(d) for d in dims)
+    dims = tuple(_check_name(str(d), "dimension") for d in dims)
     if arr.ndim != len(dims):
         raise InputError(f"{name!r} has {arr.ndim} dimension(s) but dims {dims}")
     if coord and arr.ndim != 1:
@@ -139,16 +163,21 @@ def _as_variable(name: str, spec: Any, *, coord: bool) -> Variable:
             raise InputError(f"variable {name!r} has no {key!r} attribute (use '1' for dimensionless units)")
     attrs = {_check_name(k, f"attribute of {name!r}"): _plain_attr(name, k, v) for k, v in attrs.items() if v is not None}
     if arr.dtype == np.bool_:
-        arr = arr.astype(np.uint8)
-        attrs.setdefault("flag_values", np.array([0, 1], np.uint8))
+        # CF 1.8 section 2.2 has no unsigned types: flags are signed bytes
+        arr = arr.astype(np.int8)
+        attrs["flag_values"] = np.array([0, 1], np.int8)
         attrs.setdefault("flag_meanings", "false true")
+    elif arr.dtype.kind == "u" and arr.dtype.itemsize < 8:
+        arr = arr.astype(np.dtype(f"i{2 * arr.dtype.itemsize}"))  # unsigned -> next wider signed type
+    if "flag_values" in attrs:
+        attrs["flag_values"] = np.asarray(attrs["flag_values"]).astype(arr.dtype)
     return Variable(dims=dims, data=arr, attrs=attrs)
 
 
 def _plain_attr(var: str, key: str, value: Any) -> Any:
     """Variable attributes must be strings, numbers or numeric 1-D arrays (netCDF attribute types)."""
     if isinstance(value, (bool, np.bool_)):
-        return np.uint8(value)
+        return np.int8(value)
     if isinstance(value, (str, int, float, np.integer, np.floating)):
         return value
     arr = np.asarray(value) if isinstance(value, (list, tuple, np.ndarray)) else None
@@ -158,73 +187,66 @@ def _plain_attr(var: str, key: str, value: Any) -> Any:
 
 
 def _check_name(name: Any, what: str) -> str:
-    if not isinstance(name, str) or not name or "/" in name or _SEP in name:
-        raise InputError(f"{what} name {name!r} must be a non-empty string without '/' or '{_SEP}'")
+    """CF 1.8 section 2.3: names start with a letter and hold letters, digits and underscores."""
+    if not isinstance(name, str) or not _NAME_RE.match(name):
+        raise InputError(f"{what} name {name!r} must start with a letter and hold only letters, digits "
+                         "and underscores (CF 1.8 section 2.3)")
     return name
 
 
-def _json_default(obj: Any) -> Any:
-    if isinstance(obj, np.generic):
-        return obj.item()
+def _json_ready(obj: Any) -> Any:
+    """Nested values -> strict JSON types (non-finite floats -> null, arrays -> lists, paths -> str)."""
+    if isinstance(obj, Mapping):
+        return {str(k): _json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, set)):
+        return [_json_ready(v) for v in obj]
     if isinstance(obj, np.ndarray):
-        return obj.tolist()
+        return _json_ready(obj.tolist())
+    if isinstance(obj, np.generic):
+        return _json_ready(obj.item())
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
     if isinstance(obj, (Path, os.PathLike)):
         return os.fspath(obj)
-    raise TypeError(f"cannot store {type(obj).__name__}")
+    if obj is None or isinstance(obj, (str, bool, int, float)):
+        return obj
+    raise InputError(f"cannot store a {type(obj).__name__} in a result-file attribute")
 
 
-def _flatten(attrs: Mapping, prefix: str = "") -> tuple[dict[str, Any], list[str]]:
-    """Nested dict -> flat {'a.b': scalar/str/1-D numeric array}; returns also the JSON-encoded keys."""
-    flat: dict[str, Any] = {}
+def _encode_global(attrs: Mapping) -> tuple[dict[str, Any], list[str]]:
+    """Global attributes -> netCDF attribute values; the names stored as JSON text are returned too."""
+    out: dict[str, Any] = {}
     json_keys: list[str] = []
     for key, value in attrs.items():
-        full = prefix + _check_name(key, "attribute")
-        if isinstance(value, Mapping) and value:
-            sub, sub_json = _flatten(value, full + _SEP)
-            flat.update(sub)
-            json_keys += sub_json
-            continue
+        key = _check_name(key, "attribute")
         if isinstance(value, (str, os.PathLike)):
-            flat[full] = os.fspath(value)
+            out[key] = os.fspath(value)
             continue
         if isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_)):
-            flat[full] = value
+            out[key] = value
             continue
-        if isinstance(value, (list, tuple, np.ndarray)):
-            arr = np.asarray(value) if len(value) else None
-            if arr is not None and arr.ndim == 1 and arr.dtype.kind in "iuf":
-                flat[full] = arr
+        if isinstance(value, (list, tuple, np.ndarray)) and len(value):
+            arr = np.asarray(value)
+            if arr.ndim == 1 and arr.dtype.kind in "iuf":
+                out[key] = arr.astype(np.int64) if arr.dtype.kind == "u" else arr
                 continue
-        try:
-            flat[full] = json.dumps(value, default=_json_default, allow_nan=True, ensure_ascii=False)
-        except (TypeError, ValueError) as exc:
-            raise InputError(f"attribute {full!r} cannot be stored: {exc}") from None
-        json_keys.append(full)
-    return flat, json_keys
+        out[key] = json.dumps(_json_ready(value), ensure_ascii=False, allow_nan=False)
+        json_keys.append(key)
+    return out, json_keys
 
 
-def _unflatten(flat: Mapping[str, Any], json_keys: set[str]) -> dict:
-    out: dict = {}
-    for key, value in flat.items():
-        if key in json_keys and isinstance(value, str):
-            value = json.loads(value)
-        node = out
-        parts = key.split(_SEP)
-        for part in parts[:-1]:
-            node = node.setdefault(part, {})
-            if not isinstance(node, dict):  # a scalar and a group share a name: keep flat
-                node = out
-                parts = [key]
-                break
-        node[parts[-1]] = value
-    return out
+def _history_line(note: str) -> str:
+    import bos
+
+    stamp = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return f"{stamp} {note} (bos-toolkit {bos.__version__})"
 
 
 def _attr_value(value: Any) -> Any:
     if isinstance(value, bytes):
         return value.decode("utf-8", "replace")
     if isinstance(value, np.ndarray) and value.ndim == 0:
-        return value.item()
+        return _attr_value(value.item())
     if isinstance(value, np.generic):
         return value.item()
     return value
@@ -239,13 +261,14 @@ def write_result(
     coords: Mapping[str, Any],
     variables: Mapping[str, Any],
     attrs: Mapping[str, Any] | None = None,
+    history: str = "written by bos.store.write_result",
 ) -> Path:
-    """Write coordinates, variables and attributes to a netCDF4/CF-style HDF5 file.
+    """Write coordinates, variables and attributes to a netCDF-4 / CF-1.8 file.
 
     Parameters
     ----------
     path : path-like
-        Destination (``.h5`` or ``.nc``); written atomically.
+        Destination (``.nc`` by convention); written atomically.
     coords : dict
         ``name -> (1-D array, attrs)`` for a dimension coordinate (the
         dimension takes the coordinate's name), or a dict / :class:`Variable`
@@ -256,13 +279,24 @@ def write_result(
     variables : dict
         ``name -> (dims tuple, array, attrs)`` or a dict / :class:`Variable`
         with ``dims``, ``data``, ``attrs``.  Boolean arrays are stored as
-        uint8 flags.
+        signed-byte flags (``flag_values = [0, 1]``, ``flag_meanings``);
+        unsigned integers as the next wider signed type (CF has no unsigned
+        types).
     attrs : dict, optional
-        Global attributes; nested dicts are flattened to ``a.b`` names.
+        Global attributes.  Numbers, strings and numeric 1-D arrays are
+        stored as they are; anything else (nested dictionaries, lists of
+        strings, booleans, None) as JSON text (non-finite numbers become
+        ``null``), named in the attribute ``bos_json_attributes``.
+    history : str
+        What made the file: added, with a UTC time stamp and the software
+        version, as the first line of the CF ``history`` attribute (earlier
+        lines from ``attrs["history"]`` follow).
 
     Every coordinate and variable needs ``units`` and ``long_name``
     attributes; set ``standard_name`` where CF has one (see
-    :data:`CF_STANDARD_NAMES`).  Attributes whose value is None are left out.
+    :data:`CF_STANDARD_NAMES`).  Variable attributes whose value is None are
+    left out.  Names must start with a letter and hold only letters, digits
+    and underscores.
 
     Returns
     -------
@@ -278,10 +312,11 @@ def write_result(
 
     References
     ----------
-    CF Conventions 1.8, sections 3.1-3.3 (units, long_name, standard_name),
-    3.5 (flags), 5 (coordinates).
+    CF Conventions 1.8, sections 2.2 (data types), 2.3 (names), 2.6
+    (global attributes), 3.1-3.3 (units, long_name, standard_name), 3.5
+    (flags), 5 (coordinates).
     """
-    import h5py
+    import h5netcdf
 
     cvars = {_check_name(n, "coordinate"): _as_variable(n, s, coord=True) for n, s in coords.items()}
     dvars = {_check_name(n, "variable"): _as_variable(n, s, coord=False) for n, s in variables.items()}
@@ -297,42 +332,42 @@ def write_result(
                 raise InputError(f"variable {name!r} uses dimension {dim!r} that has no coordinate")
             if sizes[dim] != size:
                 raise InputError(f"variable {name!r} has {size} points along {dim!r}, coordinate has {sizes[dim]}")
-    flat, json_keys = _flatten(dict(attrs or {}))
-    flat["bos_file_format"] = FORMAT_NAME
-    flat.setdefault("Conventions", "CF-1.8")
+    given = dict(attrs or {})
+    given.pop(_JSON_LIST_ATTR, None)
+    old_history = given.pop("history", None)
+    history = _history_line(history)
+    if isinstance(old_history, str) and old_history.strip():
+        history += "\n" + old_history
+    given["history"] = history
+    given["bos_file_format"] = FORMAT_NAME
+    given.setdefault("Conventions", "CF-1.8")
+    flat, json_keys = _encode_global(given)
     if json_keys:
-        flat[_JSON_LIST_ATTR] = json.dumps(json_keys)
+        flat[_JSON_LIST_ATTR] = " ".join(json_keys)
 
-    def put_attrs(obj, attributes: Mapping[str, Any]) -> None:
-        for key, value in attributes.items():
-            obj.attrs[key] = value
-
-    def create(h5, name: str, var: Variable):
+    def create(nc, name: str, var: Variable, attributes: Mapping[str, Any]) -> None:
         kw: dict[str, Any] = {}
         if var.data.ndim >= 1 and var.data.size >= 4096:
             kw = {"compression": "gzip", "compression_opts": 4, "shuffle": True, "chunks": True}
-        return h5.create_dataset(name, data=var.data, **kw)
+        v = nc.create_variable(name, var.dims, data=var.data, **kw)
+        for key, value in attributes.items():
+            v.attrs[key] = value
 
     try:
         with atomic_path(path) as tmp:
-            with h5py.File(tmp, "w") as h5:
-                scales = {}
+            with h5netcdf.File(tmp, "w") as nc:
+                nc.dimensions = dict(sizes)
                 for name, var in dim_coords.items():
-                    ds = create(h5, name, var)
-                    ds.make_scale(name)
-                    put_attrs(ds, var.attrs)
-                    scales[name] = ds
+                    create(nc, name, var, var.attrs)
                 for name, var in {**aux_coords, **dvars}.items():
-                    ds = create(h5, name, var)
-                    for i, dim in enumerate(var.dims):
-                        ds.dims[i].attach_scale(scales[dim])
                     attributes = dict(var.attrs)
                     if name in dvars:
                         aux = [a for a, av in aux_coords.items() if set(av.dims) <= set(var.dims)]
                         if aux and "coordinates" not in attributes:
                             attributes["coordinates"] = " ".join(aux)
-                    put_attrs(ds, attributes)
-                put_attrs(h5, flat)
+                    create(nc, name, var, attributes)
+                for key, value in flat.items():
+                    nc.attrs[key] = value
     except (InputError, DataFileError):
         raise
     except (OSError, TypeError, ValueError) as exc:
@@ -343,35 +378,172 @@ def write_result(
 # --------------------------------------------------------------------------- reading
 
 
-def read_result(path: str | os.PathLike) -> ResultData:
-    """Read a file written by :func:`write_result`.
+def check_result_file(h5, path: str | os.PathLike, *, max_bytes: int = MAX_READ_BYTES) -> None:
+    """Refuse an open HDF5 file that reaches outside itself or declares huge arrays.
+
+    Walks every link before any data are read and raises when it finds an
+    external or soft link, a dataset with external raw storage or a
+    virtual dataset (all of which make a reader read other files), or when
+    the declared size of one dataset or of all datasets together exceeds
+    ``max_bytes`` (a compressed dataset can declare far more than the file
+    holds).
 
     Raises
     ------
     DataFileError
-        Missing file, not an HDF5 file, not a result file, or corrupt.
+        One-line reason naming the offending object.
+    """
+    import h5py
+
+    total = 0
+
+    def walk(group, prefix: str) -> None:
+        nonlocal total
+        for name in group:
+            where = f"{prefix}{name}"
+            link = group.get(name, getlink=True)
+            if isinstance(link, h5py.ExternalLink):
+                raise DataFileError(f"{path}: refusing a result file with an external link ({where} -> "
+                                    f"{link.filename}:{link.path})")
+            if isinstance(link, h5py.SoftLink):
+                raise DataFileError(f"{path}: refusing a result file with a soft link ({where} -> {link.path})")
+            obj = group.get(name)
+            if isinstance(obj, h5py.Group):
+                walk(obj, where + "/")
+                continue
+            if not isinstance(obj, h5py.Dataset):
+                continue
+            if obj.external:
+                raise DataFileError(f"{path}: refusing dataset {where} stored in external file(s) "
+                                    f"{', '.join(str(e[0]) for e in obj.external)}")
+            if obj.is_virtual:
+                raise DataFileError(f"{path}: refusing virtual dataset {where} (maps data from other files)")
+            size = int(np.prod(obj.shape, dtype=object)) * max(int(obj.dtype.itemsize), 1) if obj.shape else 0
+            total += size
+            if size > max_bytes or total > max_bytes:
+                raise DataFileError(f"{path}: dataset {where} declares {obj.shape} x {obj.dtype} "
+                                    f"({size / 1e9:.3g} GB; all datasets {total / 1e9:.3g} GB), more than the "
+                                    f"{max_bytes / 1e9:.3g} GB a reader allocates")
+
+    walk(h5, "/")
+
+
+def _open_h5(p: Path, max_bytes: int):
+    """Open, identify and safety-check a result file; returns (h5py.File, format name)."""
+    import h5py
+
+    if not p.is_file():
+        raise DataFileError(f"file not found: {p}")
+    if not h5py.is_hdf5(p):
+        raise DataFileError(f"cannot read result file {p}: not an HDF5/netCDF-4 file")
+    h5 = h5py.File(p, "r")
+    try:
+        fmt = _attr_value(h5.attrs.get("bos_file_format"))
+        if fmt != FORMAT_NAME and fmt not in _OLD_FORMATS:
+            raise DataFileError(f"{p} is not a bos result file (no bos_file_format = {FORMAT_NAME!r})")
+        check_result_file(h5, p, max_bytes=max_bytes)
+    except BaseException:
+        h5.close()
+        raise
+    return h5, fmt
+
+
+def _decode_globals(p: Path, gattrs: dict[str, Any], fmt: str) -> dict[str, Any]:
+    """Restore JSON-encoded (and, for the old format, dotted) global attributes."""
+    gattrs = dict(gattrs)
+    listed = gattrs.pop(_JSON_LIST_ATTR, "")
+    gattrs.pop("bos_file_format", None)
+    def loads(key: str, text: Any) -> Any:
+        try:
+            return json.loads(text)
+        except (json.JSONDecodeError, TypeError) as exc:
+            raise DataFileError(f"{p}: attribute {key!r} is not valid JSON "
+                                f"({getattr(exc, 'msg', exc)}); the file is damaged or was edited") from None
+
+    keys = loads(_JSON_LIST_ATTR, listed or "[]") if fmt in _OLD_FORMATS else str(listed).split()
+    if not isinstance(keys, list):
+        raise DataFileError(f"{p}: attribute {_JSON_LIST_ATTR!r} is not a list of names")
+    for key in keys:
+        if isinstance(gattrs.get(key), str):
+            gattrs[key] = loads(key, gattrs[key])
+    if fmt in _OLD_FORMATS:
+        return _unflatten_old(gattrs)
+    return gattrs
+
+
+def _flatten(attrs: Mapping, prefix: str = "") -> tuple[dict[str, Any], list[str]]:
+    """Format-1 encoding (kept for callers that still write it): nested dict ->
+    ``{'a.b': scalar/str/1-D numeric array}`` plus the names stored as JSON.
+    Dotted names draw CF 1.8 section 2.3 warnings; new files use :func:`write_result`."""
+    flat: dict[str, Any] = {}
+    json_keys: list[str] = []
+    for key, value in attrs.items():
+        if not isinstance(key, str) or not key or "/" in key or _OLD_SEP in key:
+            raise InputError(f"attribute name {key!r} must be a non-empty string without '/' or '.'")
+        full = prefix + key
+        if isinstance(value, Mapping) and value:
+            sub, sub_json = _flatten(value, full + _OLD_SEP)
+            flat.update(sub)
+            json_keys += sub_json
+            continue
+        encoded, as_json = _encode_global({"v": value})
+        flat[full] = encoded["v"]
+        json_keys += [full] if as_json else []
+    return flat, json_keys
+
+
+def _unflatten_old(flat: Mapping[str, Any]) -> dict:
+    """Format 1 stored nested dictionaries as ``a.b`` attribute names."""
+    out: dict = {}
+    for key, value in flat.items():
+        node = out
+        parts = key.split(_OLD_SEP)
+        for part in parts[:-1]:
+            node = node.setdefault(part, {})
+            if not isinstance(node, dict):  # a scalar and a group share a name: keep flat
+                node, parts = out, [key]
+                break
+        node[parts[-1]] = value
+    return out
+
+
+def _is_flag(values: np.ndarray, attrs: Mapping[str, Any]) -> bool:
+    fv = attrs.get("flag_values")
+    return values.dtype.kind in "iu" and fv is not None and np.array_equal(np.ravel(fv), [0, 1])
+
+
+def read_result(path: str | os.PathLike, *, max_bytes: int = MAX_READ_BYTES) -> ResultData:
+    """Read a file written by :func:`write_result` (no xarray needed).
+
+    Parameters
+    ----------
+    path : path-like
+    max_bytes : int
+        Refuse files whose declared arrays need more memory than this [bytes].
+
+    Raises
+    ------
+    DataFileError
+        Missing file, not an HDF5 file, not a result file, corrupt, a
+        malformed JSON attribute, links or storage outside the file, or
+        declared sizes above ``max_bytes``.
     """
     import h5py
 
     p = Path(path)
-    if not p.is_file():
-        raise DataFileError(f"file not found: {p}")
     try:
-        if not h5py.is_hdf5(p):
-            raise DataFileError(f"cannot read result file {p}: not an HDF5 file")
-        with h5py.File(p, "r") as h5:
-            gattrs = {k: _attr_value(v) for k, v in h5.attrs.items()}
-            if gattrs.get("bos_file_format") != FORMAT_NAME:
-                raise DataFileError(f"{p} is not a bos result file (no bos_file_format = {FORMAT_NAME!r})")
+        h5, fmt = _open_h5(p, max_bytes)
+        with h5:
+            gattrs = {k: _attr_value(v) for k, v in h5.attrs.items() if k not in _INTERNAL_ATTRS}
             items = {}
             for name, ds in h5.items():
                 if not isinstance(ds, h5py.Dataset):
                     continue
-                attrs = {k: _attr_value(v) for k, v in ds.attrs.items() if k not in ("CLASS", "NAME", "REFERENCE_LIST", "DIMENSION_LIST")}
+                attrs = {k: _attr_value(v) for k, v in ds.attrs.items() if k not in _INTERNAL_ATTRS}
                 dims = tuple(
                     _attr_value(d[0].attrs["NAME"]) if len(d) else f"dim_{i}" for i, d in enumerate(ds.dims)
                 ) if ds.ndim else ()
-                if ds.attrs.get("CLASS") == b"DIMENSION_SCALE" or _attr_value(ds.attrs.get("CLASS", "")) == "DIMENSION_SCALE":
+                if _attr_value(ds.attrs.get("CLASS", "")) == "DIMENSION_SCALE":
                     dims = (name,)
                 items[name] = Variable(dims=dims, data=ds[()], attrs=attrs)
     except DataFileError:
@@ -384,12 +556,58 @@ def read_result(path: str | os.PathLike) -> ResultData:
     coords = {n: v for n, v in items.items() if v.dims == (n,) or n in aux_names}
     variables = {n: v for n, v in items.items() if n not in coords}
     for var in variables.values():
-        fv = var.attrs.get("flag_values")
-        if var.data.dtype == np.uint8 and fv is not None and np.array_equal(np.ravel(fv), [0, 1]):
+        if _is_flag(var.data, var.attrs):
             var.data = var.data.astype(bool)
-    json_keys = set(json.loads(gattrs.pop(_JSON_LIST_ATTR, "[]")))
-    gattrs.pop("bos_file_format", None)
-    return ResultData(coords=coords, variables=variables, attrs=_unflatten(gattrs, json_keys))
+    return ResultData(coords=coords, variables=variables, attrs=_decode_globals(p, gattrs, fmt))
+
+
+def open_result(path: str | os.PathLike, *, max_bytes: int = MAX_READ_BYTES):
+    """Open a result file as an :class:`xarray.Dataset`, loaded into memory.
+
+    The file is checked first (see :func:`check_result_file`), then read
+    with xarray's h5netcdf engine.  Flags (``flag_values`` 0/1) are decoded
+    to boolean arrays, and global attributes stored as JSON text (nested
+    provenance such as ``rig``, ``medium``, ``summary``) are restored as
+    dictionaries / lists in ``Dataset.attrs``.  The file is closed on
+    return.
+
+    Parameters
+    ----------
+    path : path-like
+        A file written by ``bos run`` (or :func:`write_result`).
+    max_bytes : int
+        Refuse files whose declared arrays need more memory than this [bytes].
+
+    Returns
+    -------
+    xarray.Dataset
+        Coordinates ``y`` (object-plane metres, pointing UP in files of
+        format 2), ``x`` (right), ``row_px``, ``col_px``; the fields.
+
+    Raises
+    ------
+    DataFileError
+        As :func:`read_result`.
+    """
+    import xarray as xr
+
+    p = Path(path)
+    try:
+        h5, fmt = _open_h5(p, max_bytes)
+        h5.close()
+        with xr.open_dataset(p, engine="h5netcdf") as ds:
+            ds = ds.load()
+    except DataFileError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - corrupt files raise many h5py/xarray error types
+        raise DataFileError(f"cannot read result file {p}: {' '.join(str(exc).split())}") from None
+    for name in list(ds.variables):
+        var = ds[name]
+        if _is_flag(var.values, var.attrs):
+            ds[name] = var.astype(bool)
+            ds[name].attrs.update(var.attrs)
+    ds.attrs = _decode_globals(p, {k: _attr_value(v) for k, v in ds.attrs.items()}, fmt)
+    return ds
 
 
 def file_sha256(path: str | os.PathLike) -> str:
@@ -414,9 +632,47 @@ def file_sha256(path: str | os.PathLike) -> str:
 # --------------------------------------------------------------------------- CSV export and profiles
 
 
-def _column_name(name: str, units: str) -> str:
-    """Coordinate column header: the name plus '_m' for metre coordinates ('y' -> 'y_m')."""
-    return f"{name}_m" if units == "m" and not name.endswith("_m") else name
+def display_units(attrs: Mapping[str, Any]) -> str:
+    """Unit to show people: ``display_units`` (e.g. "px" for pixel counts whose CF units are "1"), else ``units``."""
+    return str(attrs.get("display_units") or attrs.get("units") or "")
+
+
+def csv_label(name: str, units: str) -> str:
+    """CSV column header ``name [units]``; a metre coordinate named ``x_m`` is written ``x [m]``."""
+    base = name[:-2] if units == "m" and name.endswith("_m") else name
+    return f"{base} [{units}]" if units else base
+
+
+def write_table(dest: str | os.PathLike | IO[str], labels: Sequence[str], columns: Sequence[np.ndarray], *,
+                fmt: str = "%.10g") -> str | Path:
+    """Write equal-length columns as CSV with one header line of ``labels``.
+
+    ``dest`` is a path (written atomically), ``"-"`` for standard output, or
+    an open text stream.  NaN is written as ``nan``.
+
+    Raises
+    ------
+    DataFileError
+        The directory is missing or unwritable.
+    """
+    table = np.column_stack([np.asarray(c, dtype=np.float64).ravel() for c in columns])
+    header = ",".join(str(lab).replace(",", ";") for lab in labels)
+    kw = {"delimiter": ",", "header": header, "comments": "", "fmt": fmt}
+    if not isinstance(dest, (str, os.PathLike)):
+        np.savetxt(dest, table, **kw)
+        return "<stream>"
+    if os.fspath(dest) == "-":
+        np.savetxt(sys.stdout, table, **kw)
+        sys.stdout.flush()
+        return "-"
+    try:
+        with atomic_path(dest) as tmp:
+            np.savetxt(tmp, table, **kw)
+    except DataFileError:
+        raise
+    except OSError as exc:
+        raise DataFileError(f"cannot write {dest}: {exc.strerror or exc}") from None
+    return Path(dest)
 
 
 def _grid_variables(result: ResultData, variables: Sequence[str] | None) -> tuple[list[str], tuple[str, ...]]:
@@ -439,13 +695,16 @@ def _grid_variables(result: ResultData, variables: Sequence[str] | None) -> tupl
     return names, dims
 
 
-def export_csv(path: str | os.PathLike, result: ResultData, *, variables: Sequence[str] | None = None) -> Path:
+def export_csv(path: str | os.PathLike | IO[str], result: ResultData, *,
+               variables: Sequence[str] | None = None) -> str | Path:
     """Write fields in long format: one row per grid point.
 
-    Columns: the dimension coordinates (``y_m``, ``x_m`` for metre
-    coordinates named y and x) followed by the variables, one header line,
-    comma-separated, NaN written as ``nan``, flags as 0/1.  By default all
-    variables sharing the dimensions of the first 2-D variable are exported.
+    Columns: the dimension coordinates (``y [m]``, ``x [m]``) followed by
+    the variables, one header line ``name [units]`` (units as in the file;
+    pixel counts as ``px``), comma-separated, NaN written as ``nan``, flags
+    as 0/1.  By default all variables sharing the dimensions of the first
+    2-D variable are exported.  ``path`` may be ``"-"`` (standard output) or
+    a text stream.
 
     Raises
     ------
@@ -455,26 +714,17 @@ def export_csv(path: str | os.PathLike, result: ResultData, *, variables: Sequen
         Output directory missing or unwritable.
     """
     names, dims = _grid_variables(result, variables)
-    axes = []
-    header = []
+    axes, labels = [], []
     for dim in dims:
         if dim not in result.coords:
             raise InputError(f"dimension {dim!r} has no coordinate in the result")
         c = result.coords[dim]
         axes.append(np.asarray(c.data, dtype=np.float64))
-        header.append(_column_name(dim, str(c.attrs.get("units", ""))))
+        labels.append(csv_label(dim, display_units(c.attrs)))
     grids = np.meshgrid(*axes, indexing="ij")
-    columns = [g.ravel() for g in grids]
-    columns += [np.asarray(result.variables[n].data, dtype=np.float64).ravel() for n in names]
-    table = np.column_stack(columns)
-    try:
-        with atomic_path(path) as tmp:
-            np.savetxt(tmp, table, delimiter=",", header=",".join(header + names), comments="", fmt="%.10g")
-    except DataFileError:
-        raise
-    except OSError as exc:
-        raise DataFileError(f"cannot write {path}: {exc.strerror or exc}") from None
-    return Path(path)
+    columns = [g.ravel() for g in grids] + [np.asarray(result.variables[n].data, dtype=np.float64) for n in names]
+    labels += [csv_label(n, display_units(result.variables[n].attrs)) for n in names]
+    return write_table(path, labels, columns)
 
 
 def profile(
@@ -495,19 +745,19 @@ def profile(
     variable : str
         Name of a variable with dimensions ``(y, x)``.
     start, end : (x, y)
-        End points in object-plane metres, given as (x, y) like polygon
-        vertices (y points down).
+        End points in the result's coordinates [m], given as (x, y) like
+        polygon vertices (in result files y points UP).
     n : int, optional
         Number of samples; default about one per grid spacing, at least 2.
     y, x : str
-        Names of the row and column coordinates.
+        Names of the row and column coordinates (ascending or descending).
 
     Returns
     -------
     Profile
         Bilinear interpolation; a sample is NaN outside the grid or when any
         of the grid nodes that carry weight for it is NaN (NaN does not spread
-        beyond its own grid cells).
+        beyond its own grid cells).  ``units`` is the display unit.
     """
     from scipy.interpolate import RegularGridInterpolator
 
@@ -522,6 +772,11 @@ def profile(
         raise InputError("profile end points must be finite")
     ys = np.asarray(result.coords[y].data, dtype=np.float64)
     xs = np.asarray(result.coords[x].data, dtype=np.float64)
+    field = np.asarray(var.data, dtype=np.float64)
+    if ys.size > 1 and ys[0] > ys[-1]:  # descending coordinate (y up with rows going down)
+        ys, field = ys[::-1], field[::-1]
+    if xs.size > 1 and xs[0] > xs[-1]:
+        xs, field = xs[::-1], field[:, ::-1]
     length = math.hypot(x1 - x0, y1 - y0)
     if n is None:
         step = min(np.min(np.abs(np.diff(a))) if a.size > 1 else np.inf for a in (ys, xs))
@@ -530,7 +785,6 @@ def profile(
         raise InputError(f"profile needs n >= 2 samples, got {n}")
     t = np.linspace(0.0, 1.0, int(n))
     px, py = x0 + t * (x1 - x0), y0 + t * (y1 - y0)
-    field = np.asarray(var.data, dtype=np.float64)
     bad = ~np.isfinite(field)
     pts = np.column_stack([_snap(py, ys), _snap(px, xs)])
     kw = {"method": "linear", "bounds_error": False, "fill_value": np.nan}
@@ -538,7 +792,7 @@ def profile(
     if bad.any():
         touched = RegularGridInterpolator((ys, xs), bad.astype(np.float64), **kw)(pts)
         values = np.where(touched > 0.0, np.nan, values)
-    return Profile(variable=variable, units=str(var.attrs.get("units", "")), s_m=t * length, x_m=px, y_m=py,
+    return Profile(variable=variable, units=display_units(var.attrs), s_m=t * length, x_m=px, y_m=py,
                    values=values)
 
 
@@ -549,14 +803,7 @@ def _snap(v: np.ndarray, axis: np.ndarray) -> np.ndarray:
     return np.where((v < lo) & (v > lo - tol), lo, np.where((v > hi) & (v < hi + tol), hi, v))
 
 
-def export_profile_csv(path: str | os.PathLike, prof: Profile) -> Path:
-    """Write a :class:`Profile` as CSV with columns ``s_m, x_m, y_m, <variable>``."""
-    table = np.column_stack([prof.s_m, prof.x_m, prof.y_m, prof.values])
-    try:
-        with atomic_path(path) as tmp:
-            np.savetxt(tmp, table, delimiter=",", header=f"s_m,x_m,y_m,{prof.variable}", comments="", fmt="%.10g")
-    except DataFileError:
-        raise
-    except OSError as exc:
-        raise DataFileError(f"cannot write {path}: {exc.strerror or exc}") from None
-    return Path(path)
+def export_profile_csv(path: str | os.PathLike | IO[str], prof: Profile) -> str | Path:
+    """Write a :class:`Profile` as CSV with columns ``s [m], x [m], y [m], <variable> [<units>]``."""
+    labels = [csv_label("s_m", "m"), csv_label("x_m", "m"), csv_label("y_m", "m"), csv_label(prof.variable, prof.units)]
+    return write_table(path, labels, [prof.s_m, prof.x_m, prof.y_m, prof.values])

@@ -26,6 +26,20 @@ def parse_profile_mm(text: str) -> list[list[float]]:
     return [[x0, y0], [x1, y1]]
 
 
+def refuse_overwriting_input(output: Path, *inputs: Path) -> None:
+    """Refuse an output path that is (or links to) one of the inputs: the export would destroy it."""
+    import os
+
+    from bos.errors import InputError
+
+    for src in inputs:
+        same = Path(output).resolve() == Path(src).resolve()
+        if not same and Path(output).exists() and Path(src).exists():
+            same = os.path.samefile(output, src)  # hard links too
+        if same:
+            raise InputError(f"output {output} is the input file {src}; choose another output path")
+
+
 def _names(variables: Optional[list[str]]) -> Optional[list[str]]:
     if not variables:
         return None
@@ -36,19 +50,32 @@ def register(app: typer.Typer) -> None:
     @app.command("export")
     @handle_errors
     def export(
-        result: Path = typer.Argument(..., help="result file (.h5) written by bos run"),
-        csv: Path = typer.Option(..., "--csv", help="output CSV file"),
+        result: Path = typer.Argument(..., help="result file (.nc) written by bos run"),
+        csv: Path = typer.Option(..., "--csv", help="output CSV file ('-' for standard output); "
+                                                   "one header line 'name [units]'"),
         variables: Optional[list[str]] = typer.Option(
             None, "--variables", help="variables to export (comma-separated or repeated; default: all fields)"),
         profile: Optional[str] = typer.Option(
-            None, "--profile", help="export a line profile instead: x0,y0,x1,y1 in object-plane mm (y down)"),
+            None, "--profile", help="export a line profile instead: x0,y0,x1,y1 in the file's object-plane mm (y up)"),
         as_json: bool = typer.Option(False, "--json", help="print what was written as JSON"),
     ) -> None:
-        """Write fields (one row per grid point) or a line profile of a result file as CSV."""
+        """Write fields (one row per grid point) or a line profile of a result file as CSV.
+
+        Examples:
+
+          bos export out/plume.nc --csv fields.csv --variables temperature,density
+
+          bos export out/plume.nc --csv - --profile -10,0,10,0 | head
+        """
         from bos import store
         from bos.errors import InputError
         from bos.pipeline import PROFILE_FIELDS, sample_profile, write_profile_csv
 
+        to_stdout = str(csv) == "-"
+        if to_stdout and as_json:
+            raise InputError("--json and --csv - both write to standard output; use one of them")
+        if not to_stdout:
+            refuse_overwriting_input(csv, result)
         data = store.read_result(result)
         names = _names(variables)
         if names:
@@ -60,12 +87,12 @@ def register(app: typer.Typer) -> None:
             samples = sample_profile(data, line, names=tuple(names or PROFILE_FIELDS))
             if not samples:
                 raise InputError("none of the requested variables is a 2-D field in this result")
-            write_profile_csv(csv, samples)
+            write_profile_csv("-" if to_stdout else csv, samples)
             columns = list(samples)
         else:
-            store.export_csv(csv, data, variables=names)
+            store.export_csv("-" if to_stdout else csv, data, variables=names)
             columns = None
         if as_json:
             emit_json({"file": str(csv), "kind": "profile" if profile else "fields", "columns": columns})
-        else:
+        elif not to_stdout:
             typer.echo(f"wrote {csv}")

@@ -21,7 +21,8 @@ def describe(path: Path) -> dict[str, Any]:
     for name, var in {**data.coords, **data.variables}.items():
         arr = np.asarray(var.data)
         entry: dict[str, Any] = {"dims": list(var.dims), "shape": list(arr.shape),
-                                 "units": var.attrs.get("units"), "long_name": var.attrs.get("long_name")}
+                                 "units": store.display_units(var.attrs) or None,
+                                 "long_name": var.attrs.get("long_name")}
         if arr.dtype == bool:
             entry["true_fraction"] = float(arr.mean()) if arr.size else 0.0
         elif arr.dtype.kind in "fiu" and arr.size:
@@ -31,7 +32,8 @@ def describe(path: Path) -> dict[str, Any]:
         variables[name] = entry
     attrs = data.attrs
     keep = ("software", "software_version", "experiment_file", "inputs", "input_sha256", "rig", "medium",
-            "processing", "reconstruction", "cautions", "coordinate_note")
+            "processing", "reconstruction", "cautions", "coordinate_note", "history", "source", "references",
+            "profile_line_m")
     from bos._io import check_output_set
 
     return jsonable({
@@ -48,7 +50,7 @@ def register(app: typer.Typer) -> None:
     @app.command("inspect")
     @handle_errors
     def inspect(
-        result: Path = typer.Argument(..., help="result file (.h5) written by bos run"),
+        result: Path = typer.Argument(..., help="result file (.nc) written by bos run"),
         as_json: bool = typer.Option(False, "--json", help="print the description as JSON"),
     ) -> None:
         """Summarise a result file: headline numbers, variables with units, provenance."""

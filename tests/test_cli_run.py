@@ -146,7 +146,7 @@ def png_case(tmp_path, layer_pair):
 
 
 def _no_result_left(d: Path) -> bool:
-    leftovers = [p for p in d.rglob("*") if p.suffix in (".h5", ".png", ".csv", ".part") and "out" in p.parts]
+    leftovers = [p for p in d.rglob("*") if p.suffix in (".nc", ".h5", ".png", ".csv", ".part") and "out" in p.parts]
     return not leftovers
 
 
@@ -263,7 +263,7 @@ def test_run_recovers_layer_temperature(tmp_path, layer_pair, fmt):
     exp = write_experiment(tmp_path, f"ref.{fmt}", f"meas.{fmt}")
     out = _run_json(exp, "--out", tmp_path / "res")
     result = Path(out["files"][0])
-    assert result == tmp_path / "res" / "layer.h5" and result.is_file()
+    assert result == tmp_path / "res" / "layer.nc" and result.is_file()
     x_true, t_true, _ = layer_truth()
     with xr_open(result) as ds:
         t = ds.temperature.values
@@ -298,8 +298,8 @@ def layer_result(tmp_path_factory, layer_pair):
     exp = write_experiment(d, "ref.png", "meas.png")
     res = invoke("run", exp, "--no-figures")
     assert res.exit_code == 0, res.stderr
-    assert "peak temperature rise" in res.stdout and "layer.h5" in res.stdout
-    return d / "out" / "layer.h5"
+    assert "peak temperature rise" in res.stdout and "layer.nc" in res.stdout
+    return d / "out" / "layer.nc"
 
 
 def test_inspect_json_parses(layer_result):
@@ -320,18 +320,19 @@ def test_export_fields_and_profile(tmp_path, layer_result):
     res = invoke("export", layer_result, "--csv", csv, "--variables", "temperature,density", "--variables", "masked")
     assert res.exit_code == 0, res.stderr
     table = np.genfromtxt(csv, delimiter=",", names=True)
-    assert table.dtype.names == ("y_m", "x_m", "temperature", "density", "masked")
+    # header "name [units]"; numpy turns "temperature [K]" into temperature_K
+    assert table.dtype.names == ("y_m", "x_m", "temperature_K", "density_kg_m3", "masked_1")
     with xr_open(layer_result) as ds:
         assert table.size == ds.temperature.size
-        np.testing.assert_allclose(table["temperature"], ds.temperature.values.ravel(), equal_nan=True, rtol=1e-9)
+        np.testing.assert_allclose(table["temperature_K"], ds.temperature.values.ravel(), equal_nan=True, rtol=1e-9)
     prof = tmp_path / "line.csv"
     res = invoke("export", layer_result, "--csv", prof, "--profile", "-4,0,4,0", "--variables", "temperature")
     assert res.exit_code == 0, res.stderr
     line = np.genfromtxt(prof, delimiter=",", names=True)
-    assert set(line.dtype.names) >= {"s_m", "x_m", "y_m", "temperature"}
+    assert set(line.dtype.names) >= {"s_m", "x_m", "y_m", "temperature_K"}
     np.testing.assert_allclose(line["x_m"][[0, -1]], [-4e-3, 4e-3])
     x_true, t_true, _ = layer_truth()
-    np.testing.assert_allclose(line["temperature"], np.interp(line["x_m"], x_true, t_true), atol=0.04 * LAYER_DT_K)
+    np.testing.assert_allclose(line["temperature_K"], np.interp(line["x_m"], x_true, t_true), atol=0.04 * LAYER_DT_K)
     bad = invoke("export", layer_result, "--csv", prof, "--variables", "nonsense")
     assert bad.exit_code == 2 and "nonsense" in bad.stderr
 
@@ -352,7 +353,7 @@ def test_bit_depth_mix_and_lossy_input_warn(tmp_path, layer_pair):
 def test_demo_runs_and_reports_truth(tmp_path):
     res = invoke("demo", tmp_path / "demo-out", "--scene", "plume")
     assert res.exit_code == 0, (res.stdout, res.stderr)
-    result = tmp_path / "demo-out" / "plume" / "plume.h5"
+    result = tmp_path / "demo-out" / "plume" / "plume.nc"
     assert result.is_file() and str(result) in res.stdout.replace("\n", "")
     assert "demo results in" in res.stdout
     import re
@@ -410,4 +411,4 @@ def test_run_from_options_only_matches_the_file(tmp_path, layer_pair):
     # the displacement, which does not depend on them beyond the camera fit
     assert by_opts["summary"]["peak_displacement_px"] == pytest.approx(
         by_file["summary"]["peak_displacement_px"], abs=0.01)
-    assert Path(by_opts["files"][0]) == tmp_path / "b" / "layer.h5"
+    assert Path(by_opts["files"][0]) == tmp_path / "b" / "layer.nc"

@@ -36,7 +36,7 @@ def test_first_run_writes_manifest_matching_every_file(tmp_path):
     manifest = json.loads((out / f"{exp.output.name}-run.json").read_text())
     names = {p.name for p in out.iterdir()} - {f"{exp.output.name}-run.json"}
     assert set(manifest["files"]) == names
-    assert check_output_set(out / f"{exp.output.name}.h5", manifest["run_id"]) == []
+    assert check_output_set(out / f"{exp.output.name}.nc", manifest["run_id"]) == []
     assert not [p for p in out.iterdir() if p.name.startswith(".")]      # no staging left
 
 
@@ -72,28 +72,28 @@ def test_interrupted_swap_is_rolled_forward_by_the_next_run(tmp_path, monkeypatc
 
     monkeypatch.setattr(os, "replace", dying_replace)
     s = OutputSet(out, name)
-    s.path(out / f"{name}.h5").write_bytes(b"new result")
+    s.path(out / f"{name}.nc").write_bytes(b"new result")
     s.path(out / f"{name}-profile.csv").write_bytes(b"new csv")
     with pytest.raises(KeyboardInterrupt):
         s.commit()
     monkeypatch.setattr(os, "replace", real_replace)
     # a mix is on disk now, and the checker says so
-    assert check_output_set(out / f"{name}.h5", None)
+    assert check_output_set(out / f"{name}.nc", None)
     recover_output_sets(out, name)
     files = _snapshot(out)
-    assert files[f"{name}.h5"] == b"new result" and files[f"{name}-profile.csv"] == b"new csv"
+    assert files[f"{name}.nc"] == b"new result" and files[f"{name}-profile.csv"] == b"new csv"
     manifest = json.loads(files[f"{name}-run.json"])
-    assert manifest["run_id"] == s.run_id and set(manifest["files"]) == {f"{name}.h5", f"{name}-profile.csv"}
+    assert manifest["run_id"] == s.run_id and set(manifest["files"]) == {f"{name}.nc", f"{name}-profile.csv"}
     # figures of the old run, which the new run did not write, are gone: no mix
     assert not any(n.endswith(".png") for n in files)
-    assert check_output_set(out / f"{name}.h5", s.run_id) == []
+    assert check_output_set(out / f"{name}.nc", s.run_id) == []
 
 
 def test_staging_without_manifest_is_discarded(tmp_path):
     exp, result, out = _good_set(tmp_path)
     before = _snapshot(out)
     s = OutputSet(out, exp.output.name)
-    s.path(out / f"{exp.output.name}.h5").write_bytes(b"half")
+    s.path(out / f"{exp.output.name}.nc").write_bytes(b"half")
     # process killed here: nothing swapped; the next run (or recovery) removes the staging folder
     recover_output_sets(out, exp.output.name)
     assert _snapshot(out) == before
@@ -105,16 +105,16 @@ def test_checker_flags_a_file_from_another_run(tmp_path):
     name = exp.output.name
     run_id = json.loads((out / f"{name}-run.json").read_text())["run_id"]
     (out / f"{name}-profile.csv").write_text("s_m\n0\n")
-    warnings = check_output_set(out / f"{name}.h5", run_id)
+    warnings = check_output_set(out / f"{name}.nc", run_id)
     assert any("profile.csv" in w for w in warnings)
-    assert any("another run" in w for w in check_output_set(out / f"{name}.h5", "some-other-run"))
+    assert any("another run" in w for w in check_output_set(out / f"{name}.nc", "some-other-run"))
 
 
 def test_result_file_records_its_run(tmp_path):
     from bos import store
 
     exp, result, out = _good_set(tmp_path)
-    data = store.read_result(out / f"{exp.output.name}.h5")
+    data = store.read_result(out / f"{exp.output.name}.nc")
     manifest = json.loads((out / f"{exp.output.name}-run.json").read_text())
     assert data.attrs["run_id"] == manifest["run_id"]
 
@@ -163,7 +163,7 @@ def test_inspect_warns_about_a_file_from_another_run(tmp_path):
     exp, result, out = _good_set(tmp_path)
     name = exp.output.name
     (out / f"{name}-profile.csv").write_text("s_m\n0\n")
-    res = CliRunner().invoke(get_app(), ["inspect", str(out / f"{name}.h5"), "--json"])
+    res = CliRunner().invoke(get_app(), ["inspect", str(out / f"{name}.nc"), "--json"])
     assert res.exit_code == 0, res.output
     info = json.loads(res.stdout)
     assert any("profile.csv" in w for w in info["file_set_warnings"])

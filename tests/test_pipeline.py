@@ -162,15 +162,17 @@ def test_save_run_writes_self_describing_files(tmp_path):
     exp, result, temperature = _crafted(tmp_path)
     files = pipeline.save_run(result, exp)
     out = tmp_path / "out"
-    assert files[0] == out / "crafted.h5"
-    assert {p.name for p in files} == {"crafted.h5", "crafted-profile.csv", "crafted-displacement.png",
+    assert files[0] == out / "crafted.nc"
+    assert {p.name for p in files} == {"crafted.nc", "crafted-profile.csv", "crafted-displacement.png",
                                        "crafted-deflection.png", "crafted-density.png", "crafted-profile.png"}
     assert not list(out.glob("*.part*")) and not list(out.glob(".*"))
     with xr.open_dataset(files[0], engine="h5netcdf") as ds:
         for name in list(ds.data_vars) + list(ds.coords):
             assert ds[name].attrs.get("units"), name
             assert ds[name].attrs.get("long_name"), name
-        assert ds.y.attrs["positive"] == "down" and "DOWN" in ds.attrs["coordinate_note"]
+        # the file's y points up (axis Y, no CF "positive"), so a plain plot is upright
+        assert ds.y.attrs["axis"] == "Y" and "positive" not in ds.y.attrs and "UP" in ds.attrs["coordinate_note"]
+        np.testing.assert_allclose(ds.y.values, -result.y_m)
         assert ds.temperature.attrs["units"] == "K" and ds.temperature.attrs["standard_name"] == "air_temperature"
         assert ds.density.attrs["units"] == "kg m-3" and ds.deflection_x.attrs["units"] == "rad"
         # masked and invalid are separate flags; the fields are NaN at both
@@ -179,7 +181,7 @@ def test_save_run_writes_self_describing_files(tmp_path):
         assert np.isnan(ds.temperature.values[m | inv]).all()
         np.testing.assert_allclose(ds.temperature.values[~(m | inv)], temperature[~(m | inv)])
         assert ds.attrs["software_version"] == bos.__version__
-        assert ds.attrs["input_sha256.reference"] == hashlib.sha256(b"reference bytes").hexdigest()
+        assert '"reference": "' + hashlib.sha256(b"reference bytes").hexdigest() in ds.attrs["input_sha256"]
         np.testing.assert_allclose(ds.x.values, result.x_m)
 
 
@@ -187,14 +189,15 @@ def test_profile_csv_is_exact_for_a_linear_field(tmp_path):
     # bilinear interpolation of a linear field is exact (analytic)
     exp, result, _ = _crafted(tmp_path)
     pipeline.save_run(result, exp)
+    # header "name [units]": numpy names the columns x_m, y_m, temperature_K
     table = np.genfromtxt(tmp_path / "out" / "crafted-profile.csv", delimiter=",", names=True)
-    expected = 300.0 + 2000.0 * table["x_m"] + 500.0 * table["y_m"]
-    ok = np.isfinite(table["temperature"])
+    expected = 300.0 + 2000.0 * table["x_m"] - 500.0 * table["y_m"]  # the CSV's y is the file's (up)
+    ok = np.isfinite(table["temperature_K"])
     assert ok.sum() >= 0.8 * ok.size
-    np.testing.assert_allclose(table["temperature"][ok], expected[ok], rtol=1e-10)
-    # the line from the file, converted mm -> m
+    np.testing.assert_allclose(table["temperature_K"][ok], expected[ok], rtol=1e-10)
+    # the line from the experiment file (y down), converted mm -> m, in file coordinates (y up)
     assert table["x_m"][0] == pytest.approx(-1.0e-3) and table["x_m"][-1] == pytest.approx(1.5e-3)
-    np.testing.assert_allclose(table["y_m"], 0.5e-3)
+    np.testing.assert_allclose(table["y_m"], -0.5e-3)
 
 
 def test_save_run_refuses_a_file_as_output_directory(tmp_path):

@@ -1,15 +1,18 @@
-"""Tests for bos.store: result files, CSV export, profiles.
+"""Tests for bos.store: result files, safe reading, CSV export, profiles.
 
-Outside oracles: xarray + h5netcdf and plain h5py read what we write (the
-file must look like netCDF4/CF to them), numpy reads the CSV back, Python's
-hashlib gives the SHA-256 of known bytes (FIPS 180-4 test vector "abc",
-from memory), and bilinear interpolation of a linear field is exact
+Outside oracles: xarray + h5netcdf, netCDF4-python (netCDF-C) and plain
+h5py read what we write (the file must look like netCDF-4/CF to them),
+numpy reads the CSV back, Python's json module parses the attributes,
+Python's hashlib gives the SHA-256 of known bytes (FIPS 180-4 test vector
+"abc", from memory), and bilinear interpolation of a linear field is exact
 (analytic).
 """
 
 from __future__ import annotations
 
 import hashlib
+import io
+import json
 import os
 from pathlib import Path
 
@@ -17,18 +20,20 @@ import h5py
 import numpy as np
 import pytest
 
+import bos
 from bos.errors import DataFileError, InputError
 from bos.store import (
     CF_STANDARD_NAMES,
     export_csv,
     export_profile_csv,
     file_sha256,
+    open_result,
     profile,
     read_result,
     write_result,
 )
 
-Y = np.linspace(-0.02, 0.02, 9)  # object-plane metres, y down
+Y = np.linspace(0.02, -0.02, 9)  # object-plane metres, y up: decreasing with the row, as bos run writes it
 X = np.linspace(-0.03, 0.03, 13)
 
 
@@ -43,12 +48,26 @@ def _fields():
     return temp, masked, invalid
 
 
+ATTRS = {
+    "title": "unit test",
+    "software_version": "0.1.0",
+    "rig": {"focal_length_m": 0.05, "z_d_m": 0.4, "sensor_px": [480, 640]},
+    "medium": {"gas": "air", "pressure_pa": 101325.0},
+    "processing": {"method": "correlation", "passes": [64, 32], "subpixel": True, "options": None},
+    "input_sha256": {"reference": "ab" * 32},
+    "cautions": ["hot surface", "laser class 2"],
+    "exif": {},
+    "profile_line_m": [0.0, 0.01, 0.02, -0.01],
+}
+
+
 def _write(path, **over):
     temp, masked, invalid = _fields()
     coords = {
-        "y": (Y, {"units": "m", "long_name": "object-plane y (down)", "positive": "down"}),
-        "x": (X, {"units": "m", "long_name": "object-plane x"}),
-        "row_px": {"dims": ("y",), "data": np.arange(9.0) * 16 + 8, "attrs": {"units": "px", "long_name": "row"}},
+        "y": (Y, {"units": "m", "long_name": "object-plane y (up)", "axis": "Y"}),
+        "x": (X, {"units": "m", "long_name": "object-plane x", "axis": "X"}),
+        "row_px": {"dims": ("y",), "data": np.arange(9.0) * 16 + 8,
+                   "attrs": {"units": "1", "long_name": "row", "display_units": "px"}},
     }
     variables = {
         "temperature": (("y", "x"), temp, {"units": "K", "long_name": "gas temperature",
@@ -58,25 +77,15 @@ def _write(path, **over):
         "masked": (("y", "x"), masked, {"units": "1", "long_name": "user mask", "flag_meanings": "measured masked"}),
         "invalid": {"dims": ("y", "x"), "data": invalid, "attrs": {"units": "1", "long_name": "rejected"}},
     }
-    attrs = {
-        "title": "unit test",
-        "software_version": "0.1.0",
-        "rig": {"focal_length_m": 0.05, "z_d_m": 0.4, "sensor_px": [480, 640]},
-        "medium": {"gas": "air", "pressure_pa": 101325.0},
-        "processing": {"method": "correlation", "passes": [64, 32], "subpixel": True, "options": None},
-        "input_sha256": {"reference": "ab" * 32},
-        "cautions": ["hot surface", "laser class 2"],
-        "exif": {},
-    }
-    kw = {"coords": coords, "variables": variables, "attrs": attrs}
+    kw = {"coords": coords, "variables": variables, "attrs": dict(ATTRS)}
     kw.update(over)
     return write_result(path, **kw)
 
 
-def test_xarray_h5netcdf_opens_with_units_coords_flags(tmp_path):
+def test_xarray_and_netcdf_c_open_with_units_coords_flags(tmp_path):
     import xarray as xr
 
-    path = _write(tmp_path / "r.h5")
+    path = _write(tmp_path / "r.nc")
     temp, masked, invalid = _fields()
     with xr.open_dataset(path, engine="h5netcdf") as ds:
         assert set(ds.data_vars) == {"temperature", "density", "masked", "invalid"}
@@ -89,26 +98,37 @@ def test_xarray_h5netcdf_opens_with_units_coords_flags(tmp_path):
         assert ds["temperature"].attrs["standard_name"] == "air_temperature"  # CF standard-name table
         assert "standard_name" not in ds["density"].attrs  # None -> left out (e.g. a gas other than air)
         np.testing.assert_array_equal(ds["temperature"].values, temp)  # NaN kept in place
-        assert ds["masked"].dtype == np.uint8
-        np.testing.assert_array_equal(ds["masked"].values, masked.astype(np.uint8))
+        # CF 1.8 section 2.2 has no unsigned types: flags are signed bytes with flag_values/flag_meanings
+        assert ds["masked"].dtype == np.int8
+        np.testing.assert_array_equal(ds["masked"].values, masked.astype(np.int8))
+        assert ds["masked"].attrs["flag_values"].dtype == np.int8
         np.testing.assert_array_equal(ds["masked"].attrs["flag_values"], [0, 1])
         assert ds["masked"].attrs["flag_meanings"] == "measured masked"
         assert ds["invalid"].attrs["flag_meanings"] == "false true"
-        assert ds.attrs["rig.focal_length_m"] == 0.05
-        assert ds.attrs["input_sha256.reference"] == "ab" * 32
-        np.testing.assert_array_equal(ds.attrs["rig.sensor_px"], [480, 640])
-        assert ds.attrs["Conventions"].startswith("CF-")
-        # the selection along a coordinate works as for any netCDF file
+        # nested provenance: one JSON attribute per key, no dotted names (CF 1.8 section 2.3)
+        assert not [k for k in ds.attrs if "." in k]
+        assert json.loads(ds.attrs["rig"]) == ATTRS["rig"]
+        assert json.loads(ds.attrs["processing"])["options"] is None
+        assert set(ds.attrs["bos_json_attributes"].split()) == {"rig", "medium", "processing", "input_sha256",
+                                                                "cautions", "exif"}
+        np.testing.assert_array_equal(ds.attrs["profile_line_m"], ATTRS["profile_line_m"])  # numeric stays numeric
+        assert ds.attrs["Conventions"] == "CF-1.8"
+        assert ds.attrs["history"].endswith(f"written by bos.store.write_result (bos-toolkit {bos.__version__})")
         assert float(ds["temperature"].sel(y=Y[2], x=X[1])) == pytest.approx(300 + 1000 * X[1] - 500 * Y[2])
     # plain h5py: coordinates are HDF5 dimension scales attached to the fields
     with h5py.File(path, "r") as h5:
         assert h5["temperature"].dims[0][0].name == "/y"
         assert h5["temperature"].dims[1][0].name == "/x"
         assert h5["y"].is_scale
+    netCDF4 = pytest.importorskip("netCDF4")  # the netCDF-C library
+    with netCDF4.Dataset(path) as nc:
+        assert nc.data_model == "NETCDF4"
+        assert nc["temperature"].dimensions == ("y", "x") and nc["temperature"].units == "K"
+        assert nc["masked"].dtype == np.int8
 
 
-def test_round_trip(tmp_path):
-    path = _write(tmp_path / "r.h5")
+def test_round_trip_and_open_result(tmp_path):
+    path = _write(tmp_path / "r.nc")
     r = read_result(path)
     temp, masked, invalid = _fields()
     assert set(r.coords) == {"y", "x", "row_px"}
@@ -118,35 +138,50 @@ def test_round_trip(tmp_path):
     np.testing.assert_array_equal(r["masked"].data, masked)
     np.testing.assert_array_equal(r["invalid"].data, invalid)
     assert r["temperature"].attrs["units"] == "K" and r["temperature"].dims == ("y", "x")
-    assert r.attrs["rig"]["z_d_m"] == 0.4
-    assert r.attrs["processing"] == {"method": "correlation", "passes": pytest.approx([64, 32]),
-                                     "subpixel": True, "options": None}
-    assert r.attrs["cautions"] == ["hot surface", "laser class 2"]
-    assert r.attrs["medium"] == {"gas": "air", "pressure_pa": 101325.0}
-    assert r.attrs["exif"] == {}
-    # what was read can be written again unchanged
-    path2 = write_result(tmp_path / "again.h5", coords=r.coords, variables=r.variables, attrs=r.attrs)
+    assert not any(k.startswith("_Netcdf4") for k in r["temperature"].attrs)
+    for key in ("rig", "medium", "processing", "input_sha256", "cautions", "exif"):
+        assert r.attrs[key] == ATTRS[key], key
+    # what was read can be written again; history grows by one line
+    path2 = write_result(tmp_path / "again.nc", coords=r.coords, variables=r.variables, attrs=r.attrs,
+                         history="copied by the test")
     r2 = read_result(path2)
     np.testing.assert_array_equal(r2["masked"].data, masked)
-    assert r2.attrs == r.attrs | {"processing": r2.attrs["processing"], "rig": r2.attrs["rig"]}
-    np.testing.assert_array_equal(r2.attrs["rig"]["sensor_px"], [480, 640])
+    lines = r2.attrs["history"].splitlines()
+    assert len(lines) == 2 and "copied by the test" in lines[0] and "write_result" in lines[1]
+    assert {k: v for k, v in r2.attrs.items() if k not in ("history", "profile_line_m")} == \
+           {k: v for k, v in r.attrs.items() if k not in ("history", "profile_line_m")}
+    # xarray view: flags decoded to bool, provenance restored as dicts
+    ds = open_result(path)
+    assert ds["masked"].dtype == bool and ds["invalid"].dtype == bool
+    np.testing.assert_array_equal(ds["masked"].values, masked)
+    assert ds.attrs["rig"] == ATTRS["rig"] and ds.attrs["cautions"] == ATTRS["cautions"]
+    assert ds.attrs["processing"]["subpixel"] is True and "bos_json_attributes" not in ds.attrs
+    np.testing.assert_array_equal(ds["temperature"].values, temp)
+    assert ds["row_px"].attrs["display_units"] == "px"
+    os.remove(path)  # the dataset is in memory and the file closed
+    assert float(ds["temperature"][0, 0]) == pytest.approx(temp[0, 0])
 
 
-def test_refuses_missing_units_and_bad_shapes(tmp_path):
+def test_refuses_missing_units_bad_shapes_and_names(tmp_path):
     temp, _, _ = _fields()
     with pytest.raises(InputError, match="'temperature' has no 'units'"):
-        _write(tmp_path / "a.h5", variables={"temperature": (("y", "x"), temp, {"long_name": "T"})})
+        _write(tmp_path / "a.nc", variables={"temperature": (("y", "x"), temp, {"long_name": "T"})})
     with pytest.raises(InputError, match="no 'long_name'"):
-        _write(tmp_path / "a.h5", variables={"t": (("y", "x"), temp, {"units": "K"})})
+        _write(tmp_path / "a.nc", variables={"t": (("y", "x"), temp, {"units": "K"})})
     with pytest.raises(InputError, match="has 9 points along 'x', coordinate has 13"):
-        _write(tmp_path / "a.h5", variables={"t": (("x", "y"), temp, {"units": "K", "long_name": "T"})})
+        _write(tmp_path / "a.nc", variables={"t": (("x", "y"), temp, {"units": "K", "long_name": "T"})})
     with pytest.raises(InputError, match="dimension 'z' that has no coordinate"):
-        _write(tmp_path / "a.h5", variables={"t": (("y", "z"), temp, {"units": "K", "long_name": "T"})})
+        _write(tmp_path / "a.nc", variables={"t": (("y", "z"), temp, {"units": "K", "long_name": "T"})})
+    # CF 1.8 section 2.3: letters, digits and underscores, starting with a letter
+    with pytest.raises(InputError, match="CF 1.8 section 2.3"):
+        _write(tmp_path / "a.nc", attrs={"rig.focal_length_m": 0.05})
+    with pytest.raises(InputError, match="CF 1.8 section 2.3"):
+        _write(tmp_path / "a.nc", variables={"2t": (("y", "x"), temp, {"units": "K", "long_name": "T"})})
     assert not list(tmp_path.iterdir())
 
 
 def test_atomic_write_crash_leaves_nothing_and_keeps_old_file(tmp_path, monkeypatch):
-    path = _write(tmp_path / "r.h5")
+    path = _write(tmp_path / "r.nc")
     before = path.read_bytes()
     calls = {"n": 0}
     original = h5py.Group.create_dataset
@@ -162,17 +197,17 @@ def test_atomic_write_crash_leaves_nothing_and_keeps_old_file(tmp_path, monkeypa
         _write(path)
     with pytest.raises(RuntimeError, match="simulated crash"):
         calls["n"] = 0
-        _write(tmp_path / "new.h5")
+        _write(tmp_path / "new.nc")
     assert path.read_bytes() == before
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["r.h5"]  # no temp or partial file
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["r.nc"]  # no temp or partial file
 
 
 def test_unwritable_or_missing_directory(tmp_path):
     with pytest.raises(DataFileError, match="does not exist") as e:
-        _write(tmp_path / "no" / "such" / "r.h5")
+        _write(tmp_path / "no" / "such" / "r.nc")
     assert "\n" not in str(e.value)
     # root ignores permission bits, so use sysfs (refuses file creation even for root) when present
-    target = Path("/sys/bos_store_test.h5") if os.geteuid() == 0 else tmp_path / "ro" / "r.h5"
+    target = Path("/sys/bos_store_test.nc") if os.geteuid() == 0 else tmp_path / "ro" / "r.nc"
     if os.geteuid() != 0:
         target.parent.mkdir()
         target.parent.chmod(0o555)
@@ -189,20 +224,100 @@ def test_unwritable_or_missing_directory(tmp_path):
 
 
 def test_read_errors(tmp_path):
-    with pytest.raises(DataFileError, match="file not found"):
-        read_result(tmp_path / "none.h5")
-    (tmp_path / "junk.h5").write_bytes(b"\x00garbage" * 100)
-    with pytest.raises(DataFileError, match="not an HDF5 file"):
-        read_result(tmp_path / "junk.h5")
-    with h5py.File(tmp_path / "other.h5", "w") as h5:
-        h5["a"] = np.arange(3)
-    with pytest.raises(DataFileError, match="not a bos result file"):
-        read_result(tmp_path / "other.h5")
-    good = _write(tmp_path / "r.h5").read_bytes()
-    (tmp_path / "cut.h5").write_bytes(good[: len(good) // 2])  # truncated file
-    with pytest.raises(DataFileError, match="cannot read result file") as e:
-        read_result(tmp_path / "cut.h5")
-    assert "\n" not in str(e.value)
+    for reader in (read_result, open_result):
+        with pytest.raises(DataFileError, match="file not found"):
+            reader(tmp_path / "none.nc")
+        (tmp_path / "junk.nc").write_bytes(b"\x00garbage" * 100)
+        with pytest.raises(DataFileError, match="not an HDF5"):
+            reader(tmp_path / "junk.nc")
+        with h5py.File(tmp_path / "other.nc", "w") as h5:
+            h5["a"] = np.arange(3)
+        with pytest.raises(DataFileError, match="not a bos result file"):
+            reader(tmp_path / "other.nc")
+        good = _write(tmp_path / "r.nc").read_bytes()
+        (tmp_path / "cut.nc").write_bytes(good[: len(good) // 2])  # truncated file
+        with pytest.raises(DataFileError, match="cannot read result file") as e:
+            reader(tmp_path / "cut.nc")
+        assert "\n" not in str(e.value)
+
+
+def test_malformed_json_attribute_is_a_data_file_error(tmp_path):
+    path = _write(tmp_path / "r.nc")
+    with h5py.File(path, "r+") as h5:
+        h5.attrs["rig"] = '{"focal_length_m": 0.05,'  # cut short by hand editing
+    for reader in (read_result, open_result):
+        with pytest.raises(DataFileError, match="attribute 'rig' is not valid JSON") as e:
+            reader(path)
+        assert "\n" not in str(e.value)
+
+
+def test_format_1_files_still_read(tmp_path):
+    # files of the first format: dotted attribute names, JSON list of the JSON-encoded names
+    path = tmp_path / "old.h5"
+    with h5py.File(path, "w") as h5:
+        y = h5.create_dataset("y", data=np.array([0.0, 0.1]))
+        y.make_scale("y")
+        y.attrs["units"], y.attrs["long_name"] = "m", "y"
+        m = h5.create_dataset("masked", data=np.array([0, 1], np.uint8))
+        m.dims[0].attach_scale(y)
+        m.attrs["flag_values"] = np.array([0, 1], np.uint8)
+        h5.attrs["bos_file_format"] = "bos-toolkit result 1"
+        h5.attrs["rig.focal_length_m"] = 0.05
+        h5.attrs["cautions"] = '["hot"]'
+        h5.attrs["bos_json_attributes"] = '["cautions"]'
+    r = read_result(path)
+    assert r.attrs["rig"] == {"focal_length_m": 0.05} and r.attrs["cautions"] == ["hot"]
+    np.testing.assert_array_equal(r["masked"].data, [False, True])
+    assert open_result(path).attrs["rig"] == {"focal_length_m": 0.05}
+
+
+def _result_file_with(tmp_path, name, build):
+    path = _write(tmp_path / name)
+    with h5py.File(path, "r+") as h5:
+        build(h5, tmp_path)
+    return path
+
+
+def test_refuses_files_that_reach_outside_themselves(tmp_path):
+    secret = tmp_path / "secret.bin"
+    secret.write_bytes(np.arange(16, dtype=np.float64).tobytes())  # any readable local file
+
+    def external_storage(h5, d):
+        h5.create_dataset("leak", shape=(16,), dtype="f8", external=[(str(secret), 0, 128)])
+
+    def external_link(h5, d):
+        with h5py.File(d / "other.h5", "w") as o:
+            o["data"] = np.arange(4.0)
+        h5["linked"] = h5py.ExternalLink(str(d / "other.h5"), "/data")
+
+    def virtual(h5, d):
+        layout = h5py.VirtualLayout(shape=(4,), dtype="f8")
+        layout[:] = h5py.VirtualSource(str(d / "other.h5"), "data", shape=(4,))
+        h5.create_virtual_dataset("virt", layout)
+
+    cases = {"external file": external_storage, "external link": external_link, "virtual dataset": virtual}
+    for what, build in cases.items():
+        path = _result_file_with(tmp_path, f"{what.replace(' ', '_')}.nc", build)
+        for reader in (read_result, open_result):
+            with pytest.raises(DataFileError, match=f"refusing .*{what.split()[-1]}") as e:
+                reader(path)
+            assert "\n" not in str(e.value), what
+
+
+def test_caps_what_a_reader_allocates(tmp_path):
+    def huge(h5, d):  # 10^12 float64 declared, nothing written: a few kB on disk
+        h5.create_dataset("bomb", shape=(10**6, 10**6), dtype="f8", chunks=(1000, 1000), compression="gzip")
+
+    path = _result_file_with(tmp_path, "bomb.nc", huge)
+    assert path.stat().st_size < 1e6
+    for reader in (read_result, open_result):
+        with pytest.raises(DataFileError, match="dataset /bomb declares .* more than the 2.15 GB") as e:
+            reader(path)
+        assert "\n" not in str(e.value)
+    small = _write(tmp_path / "r.nc")  # 9 x 13 float64 fields: ~3.7 kB of arrays in all
+    with pytest.raises(DataFileError, match="more than the 1e-06 GB"):
+        read_result(small, max_bytes=1000)
+    assert read_result(small, max_bytes=10_000)["temperature"].data.shape == (9, 13)
 
 
 def test_file_sha256(tmp_path):
@@ -216,42 +331,48 @@ def test_file_sha256(tmp_path):
         file_sha256(tmp_path / "nope")
 
 
-def test_csv_long_format_reads_back_with_numpy(tmp_path):
-    r = read_result(_write(tmp_path / "r.h5"))
-    out = export_csv(tmp_path / "f.csv", r, variables=["temperature", "masked"])
-    table = np.genfromtxt(out, delimiter=",", names=True)
-    assert table.dtype.names == ("y_m", "x_m", "temperature", "masked")
+def test_csv_long_format_with_units_reads_back_with_numpy(tmp_path):
+    r = read_result(_write(tmp_path / "r.nc"))
+    out = export_csv(tmp_path / "f.csv", r, variables=["temperature", "masked", "density"])
+    assert out.read_text().splitlines()[0] == "y [m],x [m],temperature [K],masked [1],density [kg m-3]"
+    table = np.genfromtxt(out, delimiter=",", names=True)  # numpy turns "temperature [K]" into temperature_K
+    assert table.dtype.names == ("y_m", "x_m", "temperature_K", "masked_1", "density_kg_m3")
     yy, xx = np.meshgrid(Y, X, indexing="ij")
     temp, masked, _ = _fields()
     np.testing.assert_allclose(table["y_m"], yy.ravel(), rtol=1e-9)
     np.testing.assert_allclose(table["x_m"], xx.ravel(), rtol=1e-9)
-    np.testing.assert_allclose(table["temperature"], temp.ravel(), rtol=1e-9)  # NaN at the same place
-    np.testing.assert_array_equal(table["masked"], masked.ravel().astype(float))
+    np.testing.assert_allclose(table["temperature_K"], temp.ravel(), rtol=1e-9)  # NaN at the same place
+    np.testing.assert_array_equal(table["masked_1"], masked.ravel().astype(float))
     default = np.genfromtxt(export_csv(tmp_path / "all.csv", r), delimiter=",", names=True)
-    assert set(default.dtype.names) == {"y_m", "x_m", "temperature", "density", "masked", "invalid"}
+    assert set(default.dtype.names) == {"y_m", "x_m", "temperature_K", "density_kg_m3", "masked_1", "invalid_1"}
+    stream = io.StringIO()
+    export_csv(stream, r, variables=["temperature"])
+    export_csv(tmp_path / "t.csv", r, variables=["temperature"])
+    assert stream.getvalue() == (tmp_path / "t.csv").read_text()  # a stream gets the same text
     with pytest.raises(InputError, match="no variable 'pressure'"):
         export_csv(tmp_path / "x.csv", r, variables=["pressure"])
 
 
 def test_profile_of_linear_field_is_exact_and_nan_aware(tmp_path):
-    r = read_result(_write(tmp_path / "r.h5"))
+    r = read_result(_write(tmp_path / "r.nc"))
     # line from (x, y) = (-0.025, 0.015) to (0.028, -0.018) avoiding the NaN node at (x=0, y=0)
     prof = profile(r, "temperature", start=(-0.025, 0.015), end=(0.028, -0.018), n=41)
     truth = 300.0 + 1000.0 * prof.x_m - 500.0 * prof.y_m  # analytic: bilinear is exact for linear fields
     finite = np.isfinite(prof.values)
     # the samples in the four cells around the NaN node are NaN, everything else exact
-    near = (np.abs(prof.x_m) < X[1] - X[0]) & (np.abs(prof.y_m) < Y[1] - Y[0])
+    near = (np.abs(prof.x_m) < X[1] - X[0]) & (np.abs(prof.y_m) < abs(Y[1] - Y[0]))
     np.testing.assert_array_equal(~finite, near)
     np.testing.assert_allclose(prof.values[finite], truth[finite], rtol=0, atol=1e-9)
     assert prof.s_m[-1] == pytest.approx(np.hypot(0.053, 0.033)) and prof.units == "K"
-    # a line along the top row misses the NaN entirely; outside the grid -> NaN
-    top = profile(r, "temperature", start=(-0.03, -0.02), end=(0.04, -0.02))
+    # a line along the top row (y = +0.02, the first row: y points up) misses the NaN; outside the grid -> NaN
+    top = profile(r, "temperature", start=(-0.03, 0.02), end=(0.04, 0.02))
     inside = top.x_m <= 0.03 + 1e-12
-    np.testing.assert_allclose(top.values[inside], 300 + 1000 * top.x_m[inside] + 10, atol=1e-9)
+    np.testing.assert_allclose(top.values[inside], 300 + 1000 * top.x_m[inside] - 10, atol=1e-9)
     assert np.all(np.isnan(top.values[~inside]))
     out = export_profile_csv(tmp_path / "p.csv", prof)
+    assert out.read_text().splitlines()[0] == "s [m],x [m],y [m],temperature [K]"
     back = np.genfromtxt(out, delimiter=",", names=True)
-    assert back.dtype.names == ("s_m", "x_m", "y_m", "temperature")
-    np.testing.assert_allclose(back["temperature"], prof.values, rtol=1e-9)
+    np.testing.assert_allclose(back["temperature_K"], prof.values, rtol=1e-9)
+    np.testing.assert_allclose(back["y_m"], prof.y_m, rtol=1e-9)
     with pytest.raises(InputError, match="n >= 2"):
         profile(r, "temperature", start=(0, 0), end=(0.01, 0), n=1)
