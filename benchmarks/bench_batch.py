@@ -146,8 +146,11 @@ def main() -> int:
     ap.add_argument("--frames", type=int, default=300)
     ap.add_argument("--skip", nargs="*", default=[], choices=["serial", "two", "dask", "stage"])
     ap.add_argument("--stage-pairs", type=int, default=10)
+    ap.add_argument("--render-only", action="store_true", help="only render and cache the frames")
     args = ap.parse_args()
     d = render_frames(args.frames)
+    if args.render_only:
+        return 0
     print(f"{args.frames} frames of {SHAPE[0]}x{SHAPE[1]} px, {os.cpu_count()} cores, "
           f"load average {os.getloadavg()[0]:.1f} at start", flush=True)
     rows = {}
@@ -162,9 +165,17 @@ def main() -> int:
 
             with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cl:
                 rows["dask"] = run("Dask LocalCluster 2x1", d, work, args.frames, scheduler=cl.scheduler_address)
+        if "serial" not in args.skip:
+            from bos.batch import apply_thread_budget
+
+            apply_thread_budget(1)  # one process limited to one thread: the pure process-scaling reference
+            rows["1t"] = run("1 worker, 1 thread", d, work, args.frames, workers=1)
         if "1" in rows and "2" in rows:
             print(f"speedup 1 -> 2 local workers: x{rows['2']['fps'] / rows['1']['fps']:.2f} wall "
                   f"(x{rows['2']['compute_fps'] / rows['1']['compute_fps']:.2f} while computing; target >= 1.7)")
+        if "1t" in rows and "2" in rows:
+            print(f"speedup 1 worker with 1 thread -> 2 local workers (1 thread each): "
+                  f"x{rows['2']['compute_fps'] / rows['1t']['compute_fps']:.2f} while computing")
         if "2" in rows and "dask" in rows:
             print(f"Dask / local (2 workers): x{rows['dask']['fps'] / rows['2']['fps']:.2f}")
         shutil.rmtree(work, ignore_errors=True)

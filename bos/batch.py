@@ -512,10 +512,21 @@ def _part_meta(path: Path) -> dict | None:
         return None
 
 
+class _DamagedPart(Exception):
+    """A part file that cannot be read back (it is removed and its frame computed again)."""
+
+    def __init__(self, path: Path):
+        super().__init__(str(path))
+        self.path = path
+
+
 def _read_part(path: Path) -> tuple[dict, dict[str, np.ndarray]]:
-    with np.load(path, allow_pickle=False) as z:
-        meta = json.loads(str(z["__meta__"]))
-        arrays = {k: z[k] for k in z.files if k != "__meta__"}
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            meta = json.loads(str(z["__meta__"]))
+            arrays = {k: z[k] for k in z.files if k != "__meta__"}
+    except Exception:  # noqa: BLE001 - zip CRC, truncation, bad JSON ...
+        raise _DamagedPart(path) from None
     return meta, arrays
 
 
@@ -721,9 +732,16 @@ def run_batch(exp: Experiment, frames: FrameSet, *, reference: str = "experiment
         with _locked(parts):
             _clean_stale(paths)
             old_series = _resume_state(paths, settings, digest, restart=restart)
-            report = _run_locked(exp, frames, spec, paths, n=n, gas=gas, workers=workers, scheduler=scheduler,
-                                 old_series=old_series, digest=digest, progress=progress,
-                                 warnings=list(dict.fromkeys(ref_warnings + notes)))
+            for _ in range(3):
+                try:
+                    report = _run_locked(exp, frames, spec, paths, n=n, gas=gas, workers=workers,
+                                         scheduler=scheduler, old_series=old_series, digest=digest,
+                                         progress=progress, warnings=list(dict.fromkeys(ref_warnings + notes)))
+                    break
+                except _DamagedPart as exc:  # e.g. after a power cut: compute that frame again
+                    exc.path.unlink(missing_ok=True)
+            else:
+                raise DataFileError(f"part files in {parts} keep getting damaged: check the disk")
     except BaseException:
         if created and not any(parts.glob("frame-*.npz")):
             shutil.rmtree(parts, ignore_errors=True)
@@ -746,7 +764,9 @@ def _resume_state(paths: dict[str, Path], settings: dict, digest: str, *, restar
             old = json.loads(stored.read_text())
         except (OSError, ValueError):
             old = None
-        if old is not None and old.get("sha256") != digest:
+        if old is None:  # damaged: the parts cannot be matched to settings, so they are not used
+            stored.unlink()
+        elif old.get("sha256") != digest:
             done = len(list(parts.glob("frame-*.npz")))
             raise InputError(f"an unfinished batch in {parts.parent} ({done} frame(s) done) was started with "
                              f"different settings ({_differences(old.get('settings', {}), settings)}); "
@@ -759,8 +779,13 @@ def _resume_state(paths: dict[str, Path], settings: dict, digest: str, *, restar
                              "to replace it (or choose another output.name)")
         old_series = series
     if not stored.exists():
+        for p in parts.glob("frame-*.npz"):  # parts of unknown settings are never mixed in
+            p.unlink()
         with atomic_path(stored) as tmp:
-            tmp.write_text(json.dumps({"sha256": digest, "settings": settings}, allow_nan=True, default=str))
+            with open(tmp, "w", encoding="utf-8") as fh:
+                fh.write(json.dumps({"sha256": digest, "settings": settings}, allow_nan=True, default=str))
+                fh.flush()
+                os.fsync(fh.fileno())
     return old_series
 
 

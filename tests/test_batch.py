@@ -347,3 +347,31 @@ def test_rerun_reuses_finished_series_and_refuses_other_settings(seq, serial_run
     rep = run_batch(changed, frames, workers=1, restart=True)
     assert rep.computed == N_FRAMES
     shutil.rmtree(rep.series_file.parent)
+
+
+def test_unfinished_batch_resumes_and_refuses_other_settings(tmp_path):
+    d = make_sequence(tmp_path, n=4)
+    exp_path = write_experiment(d, "unfinished")
+    frames = resolve_frames(d / "frames")
+
+    def stop_after_two(finished, total, outcome):
+        if outcome is not None and finished >= 2:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        run_batch(load_experiment(exp_path), frames, workers=1, progress=stop_after_two)
+    parts = d / "unfinished" / ".seq-series.parts"
+    assert len(list(parts.glob("frame-*.npz"))) == 2 and not (d / "unfinished" / "seq-series.nc").exists()
+    (parts / ".frame-000002.abc.npz.part.npz").write_bytes(b"half")  # left by a kill during a write
+    other = load_experiment(exp_path, overrides={"processing.overlap": 0.25})
+    with pytest.raises(InputError, match=r"unfinished batch.*2 frame\(s\) done.*processing.*--restart"):
+        run_batch(other, frames, workers=1)
+    # a finished part whose data were damaged after its metadata (e.g. by a failing disk): redone
+    part = parts / "frame-000001.npz"
+    raw = bytearray(part.read_bytes())
+    raw[len(raw) // 2: len(raw) // 2 + 64] = b"\0" * 64
+    part.write_bytes(bytes(raw))
+    rep = run_batch(load_experiment(exp_path), frames, workers=1)
+    assert rep.done == 4 and not parts.exists()
+    full = run_batch(load_experiment(write_experiment(d, "uninterrupted")), frames, workers=1)
+    assert_same_series(full.series_file, rep.series_file)
