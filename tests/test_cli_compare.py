@@ -64,6 +64,10 @@ def files(tmp_path_factory):
     flags = np.zeros(R.shape, bool)
     store.write_result(d / "bos.h5", coords=coords, variables={
         "deflection_y": var(ey), "deflection_x": var(ex), "masked": var(flags, "1"), "invalid": var(flags, "1")})
+    # the same result in a file whose y (and deflection_y) points up
+    coords_up = dict(coords, y=(-(BOS_ROWS - 80) * BOS_PIX_M, {"units": "m", "long_name": "y (up)"}))
+    store.write_result(d / "bos_up.h5", coords=coords_up, variables={
+        "deflection_y": var(-ey), "deflection_x": var(ex), "masked": var(flags, "1"), "invalid": var(flags, "1")})
     # --- knife-edge pictures of the same field (vertical knife, normal +x)
     kr, kc = np.mgrid[0:KNIFE_SHAPE[0], 0:KNIFE_SHAPE[1]].astype(float)
     br, bc = TRUTH.inverse().apply(kr, kc)
@@ -120,6 +124,13 @@ def test_compare_with_control_points(files, tmp_path):
     assert np.nanmax(np.abs(prof["bos_deflection_normal"])) > 0.25 * PEAK
     data = store.read_result(out / "compare.h5")
     assert data.variables["difference"].attrs["units"] == "rad"
+
+
+def test_compare_reads_y_up_files(files):
+    d = files["dir"]
+    r = invoke("compare", d / "bos_up.h5", d / "knife.h5", "--control-points", d / "cp.json", "--json")
+    assert r.exit_code == 0, r.output
+    _check(json.loads(r.stdout), files["overlap"])
 
 
 def test_compare_registers_automatically(files):

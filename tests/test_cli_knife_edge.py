@@ -62,9 +62,11 @@ def test_knife_edge_with_lens_writes_a_calibrated_result(pictures, tmp_path):
     assert plot.stat().st_size > 0
     with xr.open_dataset(out, engine="h5netcdf") as ds:
         dn = ds["deflection_normal"]
-        assert dn.attrs["units"] == "rad" and ds["y"].attrs["units"] == "m" and ds["y"].attrs["positive"] == "down"
+        assert dn.attrs["units"] == "rad" and ds["y"].attrs["units"] == "m" and ds["y"].attrs["axis"] == "Y"
         assert set(dn.coords) >= {"y", "x", "row_px", "col_px"}
         assert ds["x"].values[1] - ds["x"].values[0] == pytest.approx(PIX_M)
+        assert np.allclose(np.abs(np.diff(ds["y"].values)), PIX_M)       # y up or down, as BOS result files
+        assert np.array_equal(ds["row_px"].values, np.arange(dn.shape[0]))
         eps = dn.values
         flags = {k: ds[k].values.astype(bool) for k in ("saturated", "lens", "uncalibrated", "invalid")}
     from bos.store import read_result

@@ -39,6 +39,7 @@ import numpy as np
 from ..errors import InputError
 from ..optics import _check_length as _positive
 from ..optics import object_plane_coordinates
+from ._result import file_coords
 from .knife import KnifeOrientation, check_cutoff, knife_orientation
 
 __all__ = [
@@ -670,52 +671,40 @@ def calibrate_knife_edge(image, no_flow, *, knife, object_pixel_m: float, lens: 
 def knife_edge_variables(res: KnifeEdgeResult) -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
     """Coordinates, variables and attributes of a knife-edge result file (for :func:`bos.store.write_result`).
 
-    Same layout as a BOS result: ``y``/``x`` in object-plane metres (y down)
-    with ``row_px``/``col_px`` auxiliary coordinates, ``deflection_normal`` [rad],
+    Same layout as a BOS result: ``y``/``x`` in object-plane metres (oriented
+    like BOS result files) with ``row_px``/``col_px`` auxiliary coordinates, ``deflection_normal`` [rad],
     flags ``saturated``, ``lens``, ``uncalibrated``, ``invalid``, and the
     calibration under the ``calibration`` attribute group.
     """
     rows, cols = res.deflection_normal.shape
-    coords = {
-        "y": {"dims": ("y",), "data": res.y_m,
-              "attrs": {"units": "m", "long_name": "object-plane y (down)", "positive": "down",
-                        "description": "object-plane coordinate; y points DOWN (grows with image row), "
-                                       "origin at the picture centre"}},
-        "x": {"dims": ("x",), "data": res.x_m,
-              "attrs": {"units": "m", "long_name": "object-plane x (right)",
-                        "description": "object-plane coordinate; x points right (grows with image column), "
-                                       "origin at the picture centre"}},
-        "row_px": {"dims": ("y",), "data": np.arange(rows, dtype=float),
-                   "attrs": {"units": "px", "long_name": "row of the knife-edge picture"}},
-        "col_px": {"dims": ("x",), "data": np.arange(cols, dtype=float),
-                   "attrs": {"units": "px", "long_name": "column of the knife-edge picture"}},
-    }
+    coords = file_coords(res.y_m, res.x_m, np.arange(rows), np.arange(cols), what="knife-edge picture")
 
     def var(data, units, long_name, **extra):
         return {"dims": ("y", "x"), "data": np.asarray(data), "attrs": {"units": units, "long_name": long_name, **extra}}
 
-    flag = {"flag_values": np.array([0, 1], np.uint8)}
     ky, kx = res.orientation.normal
     variables = {
         "deflection_normal": var(res.deflection_normal, "rad",
                                  "light-ray deflection component normal to the knife edge (toward higher index)",
-                                 knife_normal_yx=np.array([ky, kx]), knife_angle_deg=res.orientation.angle_deg),
+                                 knife_angle_deg=res.orientation.angle_deg,
+                                 knife_normal_yx=np.array([ky, kx]),
+                                 comment="knife normal k = (k_y, k_x) in image orientation (y down); knife angle: "
+                                         "edge line from the horizontal, counter-clockwise on the screen"),
         "deflection_normal_uncertainty": var(res.deflection_normal_uncertainty, "rad",
                                              "1-sigma uncertainty of deflection_normal"),
         "intensity_ratio": var(res.intensity_ratio, "1", "knife-edge picture divided by the no-flow picture"),
-        "saturated": var(res.saturated.astype(np.uint8), "1", "1 = dark or bright saturated (deflection unknown)",
-                         flag_meanings="measured saturated", **flag),
+        "saturated": var(res.saturated.astype(bool), "1", "1 = dark or bright saturated (deflection unknown)",
+                         flag_meanings="measured saturated"),
         "saturation": var(res.saturation, "1", "saturation side: -1 dark, 0 none, +1 bright",
                           flag_values=np.array([-1, 0, 1], np.int8), flag_meanings="dark none bright"),
-        "lens": var(res.lens.astype(np.uint8), "1", "1 = calibration-lens image", flag_meanings="field lens", **flag),
-        "uncalibrated": var(res.uncalibrated.astype(np.uint8), "1",
+        "lens": var(res.lens.astype(bool), "1", "1 = calibration-lens image", flag_meanings="field lens"),
+        "uncalibrated": var(res.uncalibrated.astype(bool), "1",
                             "1 = outside the calibrated deflection range (extrapolated)",
-                            flag_meanings="calibrated extrapolated", **flag),
-        "invalid": var(res.invalid.astype(np.uint8), "1", "1 = no light in the no-flow picture",
-                       flag_meanings="lit unlit", **flag),
+                            flag_meanings="calibrated extrapolated"),
+        "invalid": var(res.invalid.astype(bool), "1", "1 = no light in the no-flow picture",
+                       flag_meanings="lit unlit"),
     }
     attrs = {"title": "calibrated knife-edge schlieren picture", "source": "bos knife-edge",
-             "coordinate_note": "object-plane coordinates; y points DOWN (grows with picture row), origin at "
-                                "the picture centre",
+             "coordinate_note": coords["y"]["attrs"]["description"],
              "calibration": res.calibration_attrs(), "summary": res.summary()}
     return coords, variables, attrs

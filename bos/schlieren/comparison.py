@@ -27,6 +27,7 @@ import numpy as np
 
 from .._io import atomic_path
 from ..errors import DataFileError, InputError
+from ._result import deflection_image_frame, file_coords
 from .knife import KnifeOrientation, knife_orientation
 from .registration import Similarity, _BosField, _rotated_normal, _smooth_nan, register_fields, similarity_from_points
 
@@ -146,8 +147,7 @@ def _bos_parts(data):
     for key in ("row_px", "col_px", "x"):
         if key not in data.coords:
             raise InputError(f"the BOS result has no {key!r} coordinate")
-    ey = np.asarray(data.variables["deflection_y"].data, float)
-    ex = np.asarray(data.variables["deflection_x"].data, float)
+    ey, ex = deflection_image_frame(data)
     valid = np.isfinite(ey) & np.isfinite(ex)
     for flag in ("masked", "invalid"):
         if flag in data.variables:
@@ -363,12 +363,7 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
     samples = [_line_samples(comp, ln) for ln in lines_px]
     written: list[Path] = []
     try:
-        coords = {
-            "y": {"dims": ("y",), "data": comp.y_m, "attrs": {"units": "m", "long_name": "object-plane y (down) of the knife-edge picture", "positive": "down"}},
-            "x": {"dims": ("x",), "data": comp.x_m, "attrs": {"units": "m", "long_name": "object-plane x (right) of the knife-edge picture"}},
-            "row_px": {"dims": ("y",), "data": comp.rows_px, "attrs": {"units": "px", "long_name": "row of the knife-edge picture"}},
-            "col_px": {"dims": ("x",), "data": comp.cols_px, "attrs": {"units": "px", "long_name": "column of the knife-edge picture"}},
-        }
+        coords = file_coords(comp.y_m, comp.x_m, comp.rows_px, comp.cols_px, what="knife-edge picture")
         variables = {
             "bos_deflection_normal": {"dims": ("y", "x"), "data": comp.bos_normal,
                                       "attrs": {"units": "rad", "long_name": "BOS deflection projected on the knife normal"}},

@@ -38,6 +38,7 @@ import numpy as np
 
 from .._io import atomic_path
 from ..errors import DataFileError, InputError
+from ._result import deflection_image_frame
 from .knife import check_cutoff, knife_orientation
 
 __all__ = ["render_knife_edge", "render_circular_cutoff", "render_colour", "auto_cutoff_deflection",
@@ -195,7 +196,8 @@ def write_virtual_views(data, directory, name: str, *, knife_angle_deg=(90.0, 0.
     data : bos.store.ResultData
         A BOS result (from :func:`bos.store.read_result` or
         :func:`bos.output.as_result_data`) with ``deflection_y`` and
-        ``deflection_x`` [rad] on ``(y, x)``.
+        ``deflection_x`` [rad] on ``(y, x)``; whether its ``y`` points up or
+        down is read from the file (``y`` against ``row_px``).
     directory : path-like
         Output directory (created if missing).
     name : str
@@ -225,11 +227,7 @@ def write_virtual_views(data, directory, name: str, *, knife_angle_deg=(90.0, 0.
     DataFileError
         The directory cannot be created or written.
     """
-    for key in ("deflection_y", "deflection_x"):
-        if key not in data.variables:
-            raise InputError(f"result has no {key!r}: virtual knife-edge views need a BOS deflection field")
-    ey = np.asarray(data.variables["deflection_y"].data, float)
-    ex = np.asarray(data.variables["deflection_x"].data, float)
+    ey, ex = deflection_image_frame(data)          # image orientation (y down), whatever the file uses
     check_cutoff(cutoff)
     angles = [knife_angle_deg] if isinstance(knife_angle_deg, (str, int, float)) else list(knife_angle_deg)
     if not angles:
