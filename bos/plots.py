@@ -19,6 +19,7 @@ display needed) at screen resolution and written atomically.
 
 from __future__ import annotations
 
+import dataclasses
 import io
 import json
 import math
@@ -273,9 +274,7 @@ def figure_data(source: Any, *, name: str | None = None) -> FigureData:
         A path that cannot be read as a result file.
     """
     if isinstance(source, FigureData):
-        if name:
-            source.name = name
-        return source
+        return dataclasses.replace(source, name=name) if name else source
     default_name = "result"
     if isinstance(source, (str, os.PathLike)):
         default_name = Path(source).stem
@@ -679,6 +678,39 @@ def _stair(x_mm: np.ndarray) -> np.ndarray:
     return np.column_stack([x_mm - half[0] + eps, x_mm + half[1] - eps]).ravel()
 
 
+def _block_factor(shape: tuple[int, int], box_in: tuple[float, float]) -> int:
+    """Vectors per screen pixel (rounded down, at least 1) of a field drawn in a box of box_in inches."""
+    ky = int(shape[0] // max(box_in[1] * DPI, 1.0))
+    kx = int(shape[1] // max(box_in[0] * DPI, 1.0))
+    return max(1, min(kx, ky))
+
+
+def _blocks(a: np.ndarray, k: int, how: str) -> np.ndarray:
+    """k x k block mean of the finite values ('mean', NaN where none) or block any ('any'), padded at the end."""
+    if k == 1:
+        return a
+    ny, nx = a.shape
+    fill = np.nan if how == "mean" else False
+    a = np.pad(a, ((0, (-ny) % k), (0, (-nx) % k)), constant_values=fill)
+    b = a.reshape(a.shape[0] // k, k, a.shape[1] // k, k)
+    if how == "any":
+        return b.any(axis=(1, 3))
+    ok = np.isfinite(b)
+    n = ok.sum(axis=(1, 3))
+    total = np.where(ok, b, 0.0).sum(axis=(1, 3))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, total / np.maximum(n, 1), np.nan)
+
+
+def _block_axis(v_m: np.ndarray, k: int) -> np.ndarray:
+    """Centres [m] of the k-blocks of an evenly spaced axis (extended past its end for the padding)."""
+    if k == 1 or v_m.size < 2:
+        return v_m
+    step = (v_m[-1] - v_m[0]) / (v_m.size - 1)
+    nb = -(-v_m.size // k)
+    return v_m[0] + (np.arange(nb) * k + (k - 1) / 2) * step
+
+
 def _draw_masked(ax, masked: np.ndarray, x_m: np.ndarray, y_m: np.ndarray) -> None:
     import matplotlib as mpl
 
@@ -747,11 +779,21 @@ def build_fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.nda
     box_w = _PANEL_W - _LEFT - _CB_PAD - _CB_W - _RIGHT_CB_LABEL
     box_h = min(_PANEL_H - _TOP_TITLE - _BOTTOM_LABEL, max(box_w * aspect, 1.2))   # no empty band for wide fields
     fig = _figure(_PANEL_W * len(panels), top + bottom + box_h)
+    # a field with more vectors than screen pixels is drawn as k x k block means (the colour limits
+    # still come from every vector; a block holding a masked or invalid vector is drawn as such)
+    shape = np.shape(panels[0].data) if panels else (1, 1)
+    blk = _block_factor(shape, (min(box_w, box_h / aspect), min(box_h, box_w * aspect)))
+    xb, yb = _block_axis(x_m, blk), _block_axis(y_m, blk)
+    shown = _extent_mm(xb, yb)
+    if has_masked:
+        masked_b = _blocks(np.asarray(masked, bool), blk, "any")
+    if has_invalid:
+        invalid_b = _blocks(np.asarray(invalid, bool), blk, "any")
     for k, p in enumerate(panels):
         ax, cax = _place_panel(fig, k, aspect=aspect, top_in=top, bottom_in=bottom)
         vmin, vmax = _limits(p.data, p.symmetric)
-        im = ax.imshow(np.ma.masked_invalid(p.data), extent=extent, origin="upper", cmap=p.cmap,
-                       vmin=vmin, vmax=vmax, interpolation="nearest", aspect="auto")
+        im = ax.imshow(np.ma.masked_invalid(_blocks(np.asarray(p.data, float), blk, "mean")), extent=shown,
+                       origin="upper", cmap=p.cmap, vmin=vmin, vmax=vmax, interpolation="nearest", aspect="auto")
         cb = fig.colorbar(im, cax=cax)
         _plain_numbers(cb.ax.yaxis)
         cb.set_label(f"{p.title} [{p.units}]")
@@ -761,9 +803,9 @@ def build_fields_figure(panels: Sequence[Panel], *, x_m: np.ndarray, y_m: np.nda
         _plain_numbers(ax.xaxis)
         _plain_numbers(ax.yaxis)
         if has_masked:
-            _draw_masked(ax, np.asarray(masked, bool), x_m, y_m)
+            _draw_masked(ax, masked_b, xb, yb)
         if has_invalid:
-            _draw_invalid(ax, np.asarray(invalid, bool), extent)
+            _draw_invalid(ax, invalid_b, shown)
         if axis is not None:
             pos = axis.m * 1e3
             draw = ax.axvline if axis.orientation == "vertical" else ax.axhline
