@@ -278,7 +278,8 @@ def test_template_and_demo_files_validate_against_the_json_schema(tmp_path):
     jsonschema.Draft202012Validator.check_schema(schema)
     validator = jsonschema.Draft202012Validator(schema)
     docs = [tomllib.loads(config.template_toml())]
-    docs += [tomllib.loads(p.read_text()) for p in sorted((ROOT / "datasets" / "demo").glob("*/experiment.toml"))]
+    demo = sorted(ROOT.glob("bos/data/demo/*/experiment.toml")) or sorted(ROOT.glob("datasets/demo/*/experiment.toml"))
+    docs += [tomllib.loads(p.read_text()) for p in demo]
     assert len(docs) >= 3
     for doc in docs:
         assert not list(validator.iter_errors(doc))
