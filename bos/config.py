@@ -129,6 +129,8 @@ SCHEMA: dict[str, dict[str, Spec]] = {
                           help="quantity to solve for in inverse design"),
         "max_blur_mm": Spec("float", positive=True, hi=1000.0, scale=1e-3, target="max_blur_m",
                             help="largest acceptable object-plane blur in inverse design [mm]"),
+        "smallest_feature_mm": Spec("float", positive=True, hi=10000.0, scale=1e-3, target="smallest_feature_m",
+                                    help="smallest flow feature to resolve [mm] (warns when the blur is larger)"),
     },
     "images": {
         "reference": Spec("path", help="reference image (no flow)", example="reference.png"),
@@ -249,6 +251,7 @@ class PlanConfig:
     target_spl_db: float | None = None
     solve_for: str | None = None
     max_blur_m: float | None = None
+    smallest_feature_m: float | None = None
 
 
 @dataclass(frozen=True)
@@ -828,6 +831,7 @@ _TEMPLATE_EXAMPLES: dict[tuple[str, str], Any] = {
     ("plan", "target_spl_db"): 140.0,
     ("plan", "solve_for"): "z_d",
     ("plan", "max_blur_mm"): 1.0,
+    ("plan", "smallest_feature_mm"): 2.0,
     ("images", "mask"): "mask.png",
     ("images", "mask_polygons"): [[[0, 0], [40, 0], [40, 300], [0, 300]]],
     ("images", "frame"): 0,

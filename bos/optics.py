@@ -491,7 +491,8 @@ def _check_plan_inputs(object_width_m, noise_px, window_px) -> None:
 
 def plan(rig: Rig, *, medium, object_width_m: float, noise_px: float = 0.05, window_px: int = 32,
          expected_deflection_rad: float | None = None, source_frequency_hz: float | None = None,
-         target_dt_k: float | None = None, target_spl_db: float | None = None) -> Plan:
+         target_dt_k: float | None = None, target_spl_db: float | None = None,
+         smallest_feature_m: float | None = None) -> Plan:
     """Evaluate a BOS rig: sensitivity, detection limits, blur, dot size, warnings.
 
     Parameters
@@ -566,8 +567,46 @@ def plan(rig: Rig, *, medium, object_width_m: float, noise_px: float = 0.05, win
         expected_deflection_rad=expected,
         expected_displacement_px=None if expected is None else expected * s_px,
     )
-    p.warnings = _warnings(p, rig) + list(getattr(medium, "warnings", ()))
+    p.warnings = (_warnings(p, rig) + _feature_warnings(p, smallest_feature_m)
+                  + list(getattr(medium, "warnings", ())))
     return p
+
+
+#: Largest object-plane blur, as a fraction of the acoustic wavelength, before a sound field's
+#: amplitude is visibly reduced (common practice; a Gaussian blur of FWHM lambda/4 keeps 80 %).
+SOUND_BLUR_FRACTION = 0.25
+
+
+def gaussian_blur_transfer(blur_fwhm_m: float, wavelength_m: float) -> float:
+    """Amplitude kept by a Gaussian blur of full width at half maximum ``blur_fwhm_m`` for a
+    sinusoid of period ``wavelength_m``: exp(-(2 pi sigma / lambda)^2 / 2), sigma = FWHM / (2 sqrt(2 ln 2)).
+
+    References
+    ----------
+    Goodman, J. W. (2005). Introduction to Fourier Optics, 3rd ed., Roberts & Co.,
+    section 2.1 (Fourier transform of a Gaussian) -- from memory.
+    """
+    sigma = blur_fwhm_m / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    return math.exp(-0.5 * (2.0 * math.pi * sigma / wavelength_m) ** 2)
+
+
+def _feature_warnings(p: Plan, smallest_feature_m: float | None) -> list[str]:
+    """Blur against the smallest feature the user wants, and against the acoustic wavelength."""
+    out: list[str] = []
+    blur = p.object_blur_m
+    if smallest_feature_m is not None and blur > smallest_feature_m:
+        out.append(f"object-plane blur {blur * 1e3:.3g} mm exceeds the smallest feature to resolve "
+                   f"({smallest_feature_m * 1e3:.3g} mm): stop down (larger N), shorten Z_D or bring the object "
+                   "closer to the background")
+    f = p.source_frequency_hz
+    if f:
+        lam = p.speed_of_sound_m_s / f
+        if blur > SOUND_BLUR_FRACTION * lam:
+            kept = gaussian_blur_transfer(blur, lam)
+            out.append(f"object-plane blur {blur * 1e3:.3g} mm is more than a quarter of the acoustic wavelength "
+                       f"({lam * 1e3:.3g} mm at {f / 1e3:.3g} kHz): the sound field's amplitude is reduced to about "
+                       f"{100 * kept:.0f} %; stop down, shorten Z_D or move the object toward the background")
+    return out
 
 
 def _warnings(p: Plan, rig: Rig) -> list[str]:

@@ -248,7 +248,8 @@ def reject_weak_peaks(disp, *, min_peak: float | None = None):
                                sigma_dy=disp.sigma_dy * nan, sigma_dx=disp.sigma_dx * nan, params=params)
 
 
-def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None, medium=None):
+def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None, medium=None,
+                progress: Callable[[float], None] | None = None):
     """Deflection, coordinates and density/temperature from a displacement field.
 
     Planar objects use the oblique-ray (finite camera distance) correction of
@@ -277,7 +278,7 @@ def reconstruct(disp, exp: Experiment, *, image_shape: tuple[int, int], rig=None
     step_x = float(np.median(np.diff(disp.cols))) if len(disp.cols) > 1 else 1.0
     pix = rig.object_pixel_m
     common = dict(medium=medium, masked=disp.masked, invalid=disp.invalid, sigma_y=sig_y, sigma_x=sig_x,
-                  y_m=y_m, x_m=x_m)
+                  y_m=y_m, x_m=x_m, progress=progress)
     if kind == "planar":
         width = exp.geometry.object_width_m
         if width is None:
@@ -477,8 +478,9 @@ def process_inputs(inputs: Inputs, exp: Experiment, *, progress: ProgressFn | No
     early += validation_warnings(disp)
     _tick(progress, "displacement", 1.0)
     _tick(progress, "reconstruction", 0.0)
-    eps_y, eps_x, y_m, x_m, dens = reconstruct(disp, exp, image_shape=inputs.reference.shape,
-                                               rig=rig, medium=medium)
+    eps_y, eps_x, y_m, x_m, dens = reconstruct(
+        disp, exp, image_shape=inputs.reference.shape, rig=rig, medium=medium,
+        progress=None if progress is None else (lambda f: progress("reconstruction", 0.99 * f)))
     _tick(progress, "reconstruction", 1.0)
     warnings = list(inputs.warnings) + list(exif_notes or []) + early
     warnings += [str(w) for w in (getattr(disp, "warnings", None) or [])]

@@ -36,7 +36,43 @@ OVERRIDES = {
     "target_spl_db": "plan.target_spl_db",
     "solve_for": "plan.solve_for",
     "max_blur_mm": "plan.max_blur_mm",
+    "smallest_feature_mm": "plan.smallest_feature_mm",
 }
+
+# settings a plan depends on that have a default: (file key, label, unit, scale to the shown unit)
+DEFAULTED = (("camera.f_number", "f-number", "", 1.0), ("camera.wavelength_nm", "light wavelength", "nm", 1.0),
+             ("medium.gas", "gas", "", None), ("medium.pressure_pa", "ambient pressure", "Pa", 1.0),
+             ("medium.temperature_c", "ambient temperature", "°C", 1.0),
+             ("plan.noise_px", "displacement noise floor", "px", 1.0),
+             ("plan.window_px", "final interrogation window", "px", 1.0))
+
+
+def defaults_used(exp, experiment_file: Path | None, options: dict[str, Any]) -> dict[str, Any]:
+    """The planning settings left at their defaults: ``{"camera.f_number": 8.0, ...}``.
+
+    A setting counts as given when it is in the experiment file (any of its
+    spellings, e.g. temperature_k for temperature_c) or on the command line.
+    """
+    import tomllib
+
+    given: set[str] = {OVERRIDES[k] for k, v in options.items() if k in OVERRIDES and v is not None}
+    if experiment_file is not None:
+        with open(experiment_file, "rb") as fh:
+            doc = tomllib.load(fh)
+        given |= {f"{sec}.{key}" for sec, keys in doc.items() if isinstance(keys, dict) for key in keys}
+    aliases = {"medium.temperature_c": ("medium.temperature_k",), "camera.wavelength_nm": ("camera.wavelength_m",)}
+    out: dict[str, Any] = {}
+    for key, *_ in DEFAULTED:
+        if key in given or any(a in given for a in aliases.get(key, ())):
+            continue
+        section, name = key.split(".")
+        if key == "medium.temperature_c":
+            out[key] = round(exp.medium.temperature_k - 273.15, 6)
+        elif key == "camera.wavelength_nm":
+            out[key] = round(exp.camera.wavelength_m * 1e9, 6)
+        else:
+            out[key] = getattr(getattr(exp, section), name)
+    return out
 # geometry option -> Rig field; a file distance not named on the command line is
 # dropped in this order (least specific first) until two remain
 DISTANCES = (("camera_to_background_m", "z_b_m"), ("object_to_background_m", "z_d_m"),
@@ -165,7 +201,8 @@ def run_plan(exp, rig_kw: dict[str, Any], *, max_blur_m: float | None = None):
         rig = Rig(**rig_kw)
     result = plan(rig, medium=medium, object_width_m=width, noise_px=p_cfg.noise_px, window_px=p_cfg.window_px,
                   expected_deflection_rad=p_cfg.expected_deflection_rad, source_frequency_hz=src.frequency_hz,
-                  target_dt_k=p_cfg.target_dt_k, target_spl_db=p_cfg.target_spl_db)
+                  target_dt_k=p_cfg.target_dt_k, target_spl_db=p_cfg.target_spl_db,
+                  smallest_feature_m=p_cfg.smallest_feature_m)
     cautions = cautions_for(src.kind, src.illumination, frequency_hz=src.frequency_hz,
                             gas=list(medium.mole_fractions))
     return rig, result, design, cautions
@@ -240,7 +277,7 @@ def write_chart(path: Path, rig, result) -> None:
         fig.savefig(tmp, format="png", dpi=100)
 
 
-def print_table(result, design, cautions: list[str]) -> None:
+def print_table(result, design, cautions: list[str], defaults: dict[str, Any] | None = None) -> None:
     from rich.console import Console
     from rich.markup import escape
     from rich.table import Table
@@ -268,6 +305,10 @@ def print_table(result, design, cautions: list[str]) -> None:
         sep = " – " if key.endswith("range_m") else " × "
         table.add_row(label, _fmt(d[key], scale, fmt, sep), unit)
     console.print(table)
+    if defaults:
+        labels = {k: (lab, unit) for k, lab, unit, _ in DEFAULTED}
+        parts = [f"{labels[k][0]} {v}{' ' + labels[k][1] if labels[k][1] else ''} ({k})" for k, v in defaults.items()]
+        console.print(f"[cyan]defaults assumed (not given):[/] {escape('; '.join(parts))}", highlight=False)
     for w in result.warnings:
         console.print(f"[yellow]warning:[/] {escape(w)}", highlight=False)
     for c in cautions:
@@ -304,6 +345,8 @@ def register(app: typer.Typer) -> None:
         target_spl_db: Optional[float] = typer.Option(None, help="smallest sound level to resolve (dB re 20 µPa)"),
         solve_for: Optional[str] = typer.Option(None, help="inverse design: z_d, focal_length or f_number"),
         max_blur_mm: Optional[float] = typer.Option(None, help="largest acceptable object-plane blur (mm, inverse design)"),
+        smallest_feature_mm: Optional[float] = typer.Option(
+            None, help="smallest flow feature to resolve (mm): warns when the object-plane blur is larger"),
         json_out: bool = typer.Option(False, "--json", help="print machine-readable JSON"),
         chart: Optional[Path] = typer.Option(None, help="write a PNG of sensitivity and blur against Z_D"),
     ) -> None:
@@ -312,6 +355,7 @@ def register(app: typer.Typer) -> None:
         options = dict(locals())
         exp, rig_kw = build(experiment_file, options)
         rig, result, design, cautions = run_plan(exp, rig_kw, max_blur_m=exp.plan.max_blur_m)
+        defaults = defaults_used(exp, experiment_file, options)
         if chart is not None:
             write_chart(chart, rig, result)
         if json_out:
@@ -322,8 +366,9 @@ def register(app: typer.Typer) -> None:
                 "target_deflection_rad": design.target_deflection_rad,
                 "min_deflection_rad": design.min_deflection_rad}
             out["chart"] = None if chart is None else str(chart)
+            out["defaults_used"] = defaults
             emit_json(out)
         else:
-            print_table(result, design, cautions)
+            print_table(result, design, cautions, defaults)
             if chart is not None:
                 typer.echo(f"chart written: {chart}")

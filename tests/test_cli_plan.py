@@ -199,3 +199,40 @@ def test_missing_file_and_values(tmp_path):
     _one_line_error(_run([str(tmp_path / "nope.toml")]), "not found")
     _one_line_error(_run(FIRST[:-2]), "--object-width-mm")
     _one_line_error(_run(FIRST[2:]), "--focal-length-mm")
+
+
+def test_defaults_are_marked_as_defaults():
+    out = _json(FIRST)
+    assert out["defaults_used"]["camera.f_number"] == 8.0        # the assumed f/8 is said, not silent
+    assert out["defaults_used"]["plan.noise_px"] == pytest.approx(0.05)
+    given = _json([*FIRST, "--f-number", "11", "--temperature-c", "25"])
+    assert "camera.f_number" not in given["defaults_used"] and "medium.temperature_c" not in given["defaults_used"]
+    text = _run(FIRST).stdout.replace("\n", " ")
+    assert "defaults assumed" in text and "camera.f_number" in text
+
+
+def test_blur_larger_than_the_smallest_feature_warns():
+    out = _json([*FIRST, "--smallest-feature-mm", "0.01"])
+    assert any("smallest feature" in w for w in out["warnings"])
+    assert not any("smallest feature" in w for w in _json([*FIRST, "--smallest-feature-mm", "1000"])["warnings"])
+
+
+def test_blur_against_the_acoustic_wavelength():
+    # 40 kHz in air at 20 C: lambda = c/f = 343.2/40e3 = 8.58 mm (speed of sound of an ideal gas,
+    # c = sqrt(gamma R T / M)); the warning states the amplitude a Gaussian blur keeps,
+    # exp(-(2 pi sigma/lambda)^2/2) with sigma = FWHM/2.3548 (Goodman, Introduction to Fourier Optics)
+    from bos.optics import gaussian_blur_transfer
+
+    assert gaussian_blur_transfer(2.0, 8.0) == pytest.approx(
+        __import__("math").exp(-0.5 * (2 * 3.141592653589793 * 2.0 / 2.354820045 / 8.0) ** 2), rel=1e-9)
+    far = _json([*FIRST[:6], "--object-to-background-m", "3", "--object-width-mm", "20",
+                 "--source", "ultrasound", "--frequency-hz", "40000"])
+    blur = far["object_blur_m"]
+    warn = [w for w in far["warnings"] if "acoustic wavelength" in w]
+    lam = far["speed_of_sound_m_s"] / 40e3
+    assert lam == pytest.approx(8.58e-3, rel=2e-3)
+    assert blur > 0.25 * lam and warn          # 4.7 mm blur at Z_D = 3 m, f/8
+    assert f"{100 * gaussian_blur_transfer(blur, lam):.0f} %" in warn[0]
+    near = _json([*FIRST, "--f-number", "22", "--source", "ultrasound", "--frequency-hz", "40000"])
+    assert near["object_blur_m"] < 0.25 * lam
+    assert not any("acoustic wavelength" in w for w in near["warnings"])
