@@ -109,6 +109,7 @@ def test_same_seed_same_file(tmp_path):
     (["--dot-diameter-mm", "1", "--dpi", "-1"], "dpi must be positive"),
     (["--dot-diameter-mm", "1", "--fill", "0"], "fill"),
     (["--dot-diameter-mm", "1", "--kind", "stripes"], "unknown pattern kind"),
+    (["--dot-diameter-mm", "1", "--kind", "noise", "--soft"], "noise patterns are grey"),
     ([], "give --dot-diameter-mm"),
     (["--screen", "800x600-px", "--dot-diameter-mm", "1"], "--screen-pitch-mm"),
     (["--screen", "800x600-px", "--screen-pitch-mm", "0.25", "--dot-diameter-mm", "1"], "PNG or TIFF"),
