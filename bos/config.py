@@ -853,7 +853,8 @@ def template_toml(*, header: str = "") -> str:
         "# bos experiment file (TOML).  Units are in the key names; relative paths are relative to this file.",
         "# Lines starting with '# key =' show a default or an example: remove the '#' to set them.",
         "# Every key can also be given on the command line (option named in each comment); options win.",
-        "# JSON Schema for editors: `bos init --schema experiment.schema.json`.",
+        "# Editor checking: `bos init --schema experiment.schema.json`, then make the first line of this file",
+        "# '#:schema ./experiment.schema.json' (TOML editors built on Taplo validate against it).",
     ]
     if header:
         out.insert(0, f"# {header}")
