@@ -136,7 +136,9 @@ def test_uncertainty_tracks_actual_error():
 
 
 # --------------------------------------------------------------------- openpiv agreement
-OPENPIV_DATA = Path(__import__("openpiv").__file__).parent / "data"
+def _openpiv_data() -> Path:
+    openpiv = pytest.importorskip("openpiv")      # optional test oracle
+    return Path(openpiv.__file__).parent / "data"
 
 
 @pytest.mark.parametrize("pair", [("test1/exp1_001_a.bmp", "test1/exp1_001_b.bmp")])
@@ -149,8 +151,9 @@ def test_agrees_with_openpiv_on_its_real_piv_images(pair):
     from openpiv.pyprocess import get_rect_coordinates
     from openpiv.settings import PIVSettings
 
-    a = iio.imread(OPENPIV_DATA / pair[0]).astype(np.float32)
-    b = iio.imread(OPENPIV_DATA / pair[1]).astype(np.float32)
+    data = _openpiv_data()
+    a = iio.imread(data / pair[0]).astype(np.float32)
+    b = iio.imread(data / pair[1]).astype(np.float32)
     s = PIVSettings()
     s.windowsizes, s.overlap, s.num_iterations = (64, 32, 16), (32, 16, 8), 3
     _, _, u, v, flags = windef.simple_multipass(a, b, s)

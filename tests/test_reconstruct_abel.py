@@ -7,7 +7,6 @@ table [C]), scipy quad for the inverse of a profile cut by the window, and numpy
 sampling for the Monte Carlo checks.
 """
 
-import abel  # PyAbel, test oracle
 import numpy as np
 import pytest
 from scipy import integrate
@@ -16,6 +15,11 @@ from bos.errors import InputError
 from bos.reconstruct.abel import (METHODS, abel_invert_deflection, abel_invert_field, find_symmetry_axis,
                                   inversion_operator, three_point_operator)
 from bos.reconstruct.analytic import ABEL_PAIRS
+
+
+def _abel():
+    """PyAbel, an optional test oracle: the tests that use it skip without it."""
+    return pytest.importorskip("abel")
 
 N, DR = 201, 0.005  # references.md section 5 table: n = 201 samples on [0, 1]
 R = np.arange(N) * DR
@@ -36,7 +40,7 @@ def max_err(name, method):
                                          ("ellipse", None)])
 def test_three_point_no_worse_than_pyabel(name, table):
     f, F, dF = ABEL_PAIRS[name](R)
-    pyabel = abel.dasch.three_point_transform(F, basis_dir=None, dr=DR)
+    pyabel = _abel().dasch.three_point_transform(F, basis_dir=None, dr=DR)
     err_pyabel = np.abs(pyabel - f)[INNER].max()
     if table is not None:
         assert err_pyabel == pytest.approx(table, rel=0.02)  # the table value of references.md section 5
