@@ -8,9 +8,10 @@ from typing import Optional
 
 import typer
 
-from cli._common import emit_json, fail, handle_errors
+from cli._common import choice_type, emit_json, fail, handle_errors, plain
 
 EXIT_SOME_FAILED = 3
+REFERENCE_MODES = ("experiment", "previous")
 
 
 def _progress_bar(total: int):
@@ -61,9 +62,9 @@ def register(app: typer.Typer) -> None:
         frame_range: Optional[str] = typer.Option(None, "--range",
                                                   help="START:STOP[:STEP] of the ordered frames (0-based, "
                                                        "STOP excluded)"),
-        reference: str = typer.Option("experiment", "--reference",
-                                      help="'experiment' (its reference image, default) or 'previous' "
-                                           "(each frame against the one before)"),
+        reference: choice_type("ReferenceMode", REFERENCE_MODES) = typer.Option(
+            "experiment", "--reference",
+            help="experiment (its reference image) or previous (each frame against the one before)"),
         reference_frames: Optional[str] = typer.Option(None, "--reference-frames",
                                                        help="no-flow frames averaged into the reference "
                                                             "(glob, folder, list file or video)"),
@@ -76,14 +77,12 @@ def register(app: typer.Typer) -> None:
         """Process a sequence of frames: every frame through the `bos run` stages -> one series file."""
         from bos.batch import batch_paths, run_batch
         from bos.config import load_experiment
-        from bos.errors import DataFileError, InputError
+        from bos.errors import DataFileError
         from bos.frames import parse_range, resolve_frames
 
         if not experiment.is_file():
             raise DataFileError(f"experiment file not found: {experiment}")
-        if reference not in ("experiment", "previous"):
-            raise InputError(f"--reference must be 'experiment' or 'previous', got {reference!r} "
-                             "(to average no-flow frames use --reference-frames PATTERN)")
+        reference = plain(reference)
         exp = load_experiment(experiment)
         selected = resolve_frames(frames, frame_range=parse_range(frame_range), frame_rate_hz=frame_rate_hz)
         ref_set = resolve_frames(reference_frames) if reference_frames else None
