@@ -7,8 +7,8 @@ scattered rejected vectors; a 4 MP case (2000 x 2000 px, 250 x 250 grid)
 is timed too.  Reference, measured in the same process on the same data:
 the figure code of commit b6e6341 (before the figures were drawn from the
 result data), loaded from git; it is skipped when git or that commit is not
-available.  Each case is run REPEATS times and the median printed with the
-ratio reference / new.  The machine is shared (2 cores, several jobs), so
+available.  Each case is run REPEATS times, new and reference interleaved, and
+the medians printed with the ratio reference / new.  The machine is shared (2 cores, several jobs), so
 single timings are noisy: compare the ratios, not the seconds.
 
 Usage:  python benchmarks/bench_figures.py [--quick]
@@ -110,13 +110,16 @@ def new_figures(result: RunResult, directory: Path) -> None:
     plots.write_run_figures(data, plots.figure_paths(directory, "n"), name="bench")
 
 
-def median_time(fn, *args) -> float:
-    times = []
+def interleaved_medians(runs: dict) -> dict:
+    """Median seconds of each ``name -> (fn, args)``, the runs interleaved (A B A B ...) so that a
+    change of the machine's load hits both alike."""
+    times: dict = {k: [] for k in runs}
     for _ in range(REPEATS):
-        t = time.perf_counter()
-        fn(*args)
-        times.append(time.perf_counter() - t)
-    return statistics.median(times)
+        for name, (fn, args) in runs.items():
+            t = time.perf_counter()
+            fn(*args)
+            times[name].append(time.perf_counter() - t)
+    return {k: statistics.median(v) for k, v in times.items()}
 
 
 def main(quick: bool) -> None:
@@ -129,14 +132,16 @@ def main(quick: bool) -> None:
         new_figures(synthetic_result((200, 200)), d)        # warm-up: imports, font cache
         for label, shape in cases:
             result = synthetic_result(shape)
-            t_new = median_time(new_figures, result, d)
-            size_new = sum(p.stat().st_size for p in d.glob("n-*.png"))
-            line = f"{label}: new {t_new:.2f} s ({size_new / 1e3:.0f} kB, dpi {plots.DPI})"
+            runs = {"new": (new_figures, (result, d))}
             if ref is not None:
-                t_ref = median_time(reference_figures, ref, result, d)
+                runs["reference"] = (reference_figures, (ref, result, d))
+            t = interleaved_medians(runs)
+            size_new = sum(p.stat().st_size for p in d.glob("n-*.png"))
+            line = f"{label}: new {t['new']:.2f} s ({size_new / 1e3:.0f} kB, dpi {plots.DPI})"
+            if ref is not None:
                 size_ref = sum(p.stat().st_size for p in d.glob("r-*.png"))
-                line += f"; reference {REFERENCE_COMMIT} {t_ref:.2f} s ({size_ref / 1e3:.0f} kB, dpi 110); " \
-                        f"ratio reference/new x{t_ref / t_new:.2f}"
+                line += f"; reference {REFERENCE_COMMIT} {t['reference']:.2f} s ({size_ref / 1e3:.0f} kB, dpi 110); " \
+                        f"ratio reference/new x{t['reference'] / t['new']:.2f}"
             print(line, flush=True)
     if ref is None:
         print(f"(reference {REFERENCE_COMMIT} not available: run inside the git checkout)")

@@ -15,6 +15,7 @@ Outside sources of the checks:
 from __future__ import annotations
 
 import math
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -240,17 +241,17 @@ def test_acoustic_pressure_figure(tmp_path):
     med = exp.medium_model()
     result.acoustic = acoustic_field(result.density.density, medium=med, sigma_density=result.density.sigma_density)
     data = output.as_result_data(result)
-    paths = plots.figure_paths(tmp_path / "figs", "snd")
-    (tmp_path / "figs").mkdir()
-    written = plots.write_run_figures(data, paths, name="snd")
-    assert paths["fig_acoustic"] in written and paths["fig_acoustic"].stat().st_size > 1000
-    fig = plots.build_run_figures(data, name="snd")["fig_acoustic"]
+    paths = plots.figure_paths(tmp_path, "snd")
+    written = plots.write_run_figures(data, {"fig_acoustic": paths["fig_acoustic"]}, name="snd")
+    assert written == [paths["fig_acoustic"]] and paths["fig_acoustic"].stat().st_size > 1000
+    figs = plots.build_run_figures(data, name="snd")
+    fig = figs["fig_acoustic"]
     shown = fig.axes[0].images[0].get_array()
     # the panel shows the file's acoustic pressure p' = c^2 (rho - rho0) (y down; rows as in the run)
     expected = med.speed_of_sound ** 2 * (result.density.density - med.ambient_density)
     np.testing.assert_allclose(np.ma.filled(shown, np.nan), expected, rtol=1e-9, equal_nan=True)
     assert fig.axes[1].get_ylabel() == "acoustic pressure p′ [Pa]"
-    assert "acoustic pressure [Pa]" in [a.get_ylabel() for a in plots.build_run_figures(data)["fig_profile"].axes]
+    assert "acoustic pressure [Pa]" in [a.get_ylabel() for a in figs["fig_profile"].axes]
 
 
 # ----------------------------------------------------------------------------- bos plot
@@ -263,7 +264,10 @@ def test_bos_plot_rebuilds_the_run_figures_from_the_file(tmp_path):
 
     app = get_app()
 
+    import dataclasses
+
     exp, result, _ = _crafted(tmp_path)
+    exp = dataclasses.replace(exp, output=dataclasses.replace(exp.output, figures=False))
     files = output.save_run(result, exp)
     line = [[-1.0e-3, 0.5e-3], [1.5e-3, 0.5e-3]]                 # the experiment's profile line (mm -> m)
     memory = tmp_path / "memory"
@@ -304,3 +308,30 @@ def test_plan_chart_is_readable():
         assert marks[0].get_xdata()[0] == pytest.approx(0.5) and marks[0].get_ydata()[0] == pytest.approx(value)
     handle = fig.legends[0].legend_handles[0]
     assert handle.get_marker() == "o" and "chosen design" in fig.legends[0].get_texts()[0].get_text()
+
+
+def test_large_fields_drawn_as_block_means_with_flags_kept():
+    measure = pytest.importorskip("skimage.measure")
+    rng = np.random.default_rng(3)
+    a = rng.normal(size=(601, 905))
+    a[rng.random(a.shape) < 0.01] = np.nan
+    # general-purpose reference: scikit-image's block_reduce with a NaN-ignoring mean, NaN padding
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)            # all-NaN blocks
+        ref = measure.block_reduce(a, (4, 4), func=np.nanmean, cval=np.nan)
+    np.testing.assert_allclose(plots._blocks(a, 4, "mean"), ref, rtol=1e-12, equal_nan=True)
+    # a single rejected vector in a 24 MP-sized grid stays visible on screen
+    y = np.arange(500) * 1e-4
+    x = np.arange(750) * 1e-4
+    invalid = np.zeros((500, 750), bool)
+    invalid[321, 456] = True
+    fig = plots.build_fields_figure([plots.Panel(np.outer(y, x), "temperature", "K")], x_m=x, y_m=y,
+                                    invalid=invalid)
+    ax = fig.axes[0]
+    field, overlay = ax.images[0].get_array(), ax.images[1].get_array()
+    assert field.shape[0] < 500 and overlay[..., 3].sum() == 1      # drawn at screen size, one block flagged
+    from matplotlib.colors import to_rgba
+
+    np.testing.assert_allclose(_pixel(fig, ax, x[456] * 1e3, y[321] * 1e3)[:3], to_rgba(plots.INVALID_COLOUR)[:3],
+                               atol=0.02)
+
