@@ -151,7 +151,8 @@ def similarity_from_points(src_px, dst_px) -> tuple[Similarity, np.ndarray]:
 MIN_CORRELATION = 0.5
 
 
-def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0.25, cache: dict | None = None):
+def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0.25, cache: dict | None = None,
+               return_overlap: bool = False):
     """Normalised cross-correlation of two masked pictures for every integer shift.
 
     Returns an array ``ncc`` of shape ``(H_f + H_m - 1, W_f + W_m - 1)``; the
@@ -160,7 +161,8 @@ def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0
     Shifts whose overlap has fewer than ``min_overlap`` of the smaller
     picture's valid pixels are set to -inf.  ``cache`` (a dict owned by the
     caller) keeps the fixed picture's spectra between calls with the same
-    fixed picture and mask.
+    fixed picture and mask.  ``return_overlap=True`` also returns the number
+    of overlapping valid pixels for every shift.
 
     References
     ----------
@@ -205,7 +207,7 @@ def masked_ncc(fixed, fixed_mask, moving, moving_mask, *, min_overlap: float = 0
     if (~bad).any():
         bad |= den <= 1e-12 * np.max(den[~bad])
     ncc[bad] = -np.inf
-    return ncc
+    return (ncc, n) if return_overlap else ncc
 
 
 # --------------------------------------------------------------------------- automatic registration
@@ -377,6 +379,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
     kc = np.arange(0, W, step_k)
     kwork = kw[np.ix_(np.round(kr).astype(int), np.round(kc).astype(int))]
     kmask = np.isfinite(kwork)
+    n_knife = float(kmask.sum())
     kwork = np.where(kmask, kwork, 0.0)
     bos_c = ((bos.rows[0] + bos.rows[-1]) / 2, (bos.cols[0] + bos.cols[-1]) / 2)
     angles = np.radians(np.arange(-max_rotation_deg, max_rotation_deg, angle_step_deg))
@@ -396,9 +399,14 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
             cmask = np.isfinite(canvas)
             if cmask.sum() < 16:
                 continue
-            ncc = masked_ncc(kwork, kmask, np.where(cmask, canvas, 0.0), cmask, min_overlap=0.3, cache=spectra)
-            i = int(np.argmax(ncc))
-            val = float(ncc.flat[i])
+            ncc, n_ov = masked_ncc(kwork, kmask, np.where(cmask, canvas, 0.0), cmask, min_overlap=0.3,
+                                   cache=spectra, return_overlap=True)
+            # a good match over a small overlap is weak evidence: weight by the covered fraction
+            frac = np.clip(n_ov, 0.0, None) / min(n_knife, float(cmask.sum()))
+            with np.errstate(invalid="ignore"):
+                score = np.where(np.isfinite(ncc), ncc * np.sqrt(frac), -np.inf)
+            i = int(np.argmax(score))
+            val = float(score.flat[i])
             if val > best[0]:
                 iy, ix = np.unravel_index(i, ncc.shape)
                 # fixed[y, x] ~ moving[y - dy, x - dx]: canvas index 0 sits at knife work index (dy, dx)
@@ -407,7 +415,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
                 centre_c = kc[0] + (dx + (n_c - 1) / 2) * step_k
                 best = (val, (k, th, centre_r, centre_c))
     if best[1] is None or best[0] < MIN_CORRELATION:
-        raise InputError("automatic registration found no common structure (best correlation "
+        raise InputError("automatic registration found no common structure (best overlap-weighted correlation "
                          f"{best[0]:.2f}); give control points with --control-points")
     k, th, cr, cc = best[1]
     # knife(x, y) = k R(th) (bos - bos_c) + centre  ->  shift = centre - k R bos_c
