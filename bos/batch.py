@@ -771,13 +771,17 @@ def _resume_state(paths: dict[str, Path], settings: dict, digest: str, *, restar
             raise InputError(f"an unfinished batch in {parts.parent} ({done} frame(s) done) was started with "
                              f"different settings ({_differences(old.get('settings', {}), settings)}); "
                              "rerun with --restart to discard it and start again")
+    # an unfinished batch with these settings (e.g. a --restart that was interrupted) may replace
+    # a series of other settings; without one, that series is protected
+    resuming = stored.exists()
     old_series = None
     if not restart and series.exists():
         found = _series_fingerprint(series)
-        if found != digest:
+        if found == digest:
+            old_series = series
+        elif not resuming:
             raise InputError(f"{series} holds a series made with different settings; rerun with --restart "
                              "to replace it (or choose another output.name)")
-        old_series = series
     if not stored.exists():
         for p in parts.glob("frame-*.npz"):  # parts of unknown settings are never mixed in
             p.unlink()

@@ -344,8 +344,17 @@ def test_rerun_reuses_finished_series_and_refuses_other_settings(seq, serial_run
     with pytest.raises(InputError, match="different settings.*--restart"):
         run_batch(changed, frames, workers=1)
     assert first.series_file.read_bytes() == before  # the earlier good result is untouched
-    rep = run_batch(changed, frames, workers=1, restart=True)
-    assert rep.computed == N_FRAMES
+
+
+    def stop_after_one(finished, total, outcome):
+        if outcome is not None:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):  # a --restart interrupted after one frame ...
+        run_batch(changed, frames, workers=1, restart=True, progress=stop_after_one)
+    assert first.series_file.read_bytes() == before
+    rep = run_batch(changed, frames, workers=1)  # ... continues without --restart and replaces the series
+    assert rep.computed == N_FRAMES - 1 and rep.done == N_FRAMES
     shutil.rmtree(rep.series_file.parent)
 
 
