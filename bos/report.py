@@ -73,7 +73,7 @@ h3{font-size:1em;margin:1em 0 .3em}
 .caution{background:#fdecec;border:1px solid #e39a9a}
 .box ul{margin:.3em 0 .2em 1.2em;padding:0}
 table{border-collapse:collapse;margin:.3em 0 .8em;font-size:.95em}
-th,td{border:1px solid #d0d7de;padding:3px 9px;text-align:left;vertical-align:top}
+th,td{border:1px solid #d0d7de;padding:3px 9px;text-align:left;vertical-align:top;max-width:640px;overflow-wrap:anywhere}
 th{background:#f6f8fa;font-weight:600}td.num{text-align:right;font-variant-numeric:tabular-nums}
 td.hash{font-family:ui-monospace,"DejaVu Sans Mono",monospace;font-size:.85em;word-break:break-all}
 figure{margin:12px 0 18px}figure img{max-width:100%;height:auto;border:1px solid #eaeef2}
@@ -168,10 +168,6 @@ def summary_rows(attrs: Mapping[str, Any], *, axis=None) -> list[tuple[str, str,
     asym = summary.get("asymmetry")
     if asym is not None:
         rows.append(("asymmetry of the two halves (rms / peak)", _plain(asym), ""))
-    known = {r[0] for r in SUMMARY_ROWS} | {"asymmetry", "warnings"}
-    for key, value in summary.items():           # anything else the run recorded, under its own name
-        if key not in known and value is not None and value != [] and value != {}:
-            rows.append((key.replace("_", " "), _plain(value), ""))
     if axis is not None:
         coord = "x" if axis.orientation == "vertical" else "y"
         rows.append((f"fitted symmetry axis ({axis.orientation}), {coord}", _number(axis.m * 1e3, ".4g"), "mm"))
@@ -179,6 +175,14 @@ def summary_rows(attrs: Mapping[str, Any], *, axis=None) -> list[tuple[str, str,
             what = "column" if axis.orientation == "vertical" else "row"
             rows.append((f"fitted symmetry axis, image {what}", _number(axis.px, ".5g"), "px"))
     return rows
+
+
+def other_summary_rows(attrs: Mapping[str, Any]) -> list[tuple[str, str, str]]:
+    """Entries of the ``summary`` attribute that :data:`SUMMARY_ROWS` does not name, under their own names."""
+    summary = attrs.get("summary") if isinstance(attrs.get("summary"), Mapping) else {}
+    known = {r[0] for r in SUMMARY_ROWS} | {"asymmetry", "warnings"}
+    return [(key.replace("_", " "), _plain(value), "") for key, value in summary.items()
+            if key not in known and value is not None and value != [] and value != {}]
 
 
 def _figures_html(fd, *, line, dpi: int) -> str:
@@ -280,6 +284,9 @@ def report_html(source: Any, *, name: str | None = None, line: Sequence[Sequence
     parts.append('<h2 id="summary">Summary</h2>')
     rows = summary_rows(attrs, axis=fd.axis)
     parts.append(_table(rows) if rows else "<p>No summary recorded.</p>")
+    other = other_summary_rows(attrs)
+    if other:
+        parts.append("<h3>Also recorded</h3>" + _table(other, header=("item", "value", ""), num=False))
     (x0, y0), (x1, y1) = line
     parts.append(f'<p class="sub">Profile line: ({x0 * 1e3:.3f}, {y0 * 1e3:.3f}) → ({x1 * 1e3:.3f}, '
                  f"{y1 * 1e3:.3f}) mm, object-plane x right, y down.</p>")
