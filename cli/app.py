@@ -8,10 +8,12 @@ commands never need to edit this file.
 from __future__ import annotations
 
 import importlib
+import inspect
 import pkgutil
 
 import typer
 from typer.core import TyperGroup
+from typer.models import OptionInfo
 
 import cli
 
@@ -60,7 +62,32 @@ def _load_commands() -> None:
         if info.name.startswith("cmd_"):
             module = importlib.import_module(f"cli.{info.name}")
             module.register(app)
+    _add_aliases()
     _LOADED = True
+
+
+def _add_aliases() -> None:
+    """Give every command the same short aliases for the rig options (``cli._common.ALIASES``).
+
+    A command that declares ``--focal-length-mm`` also accepts ``--focal-mm``,
+    and so on, unless it already uses that spelling for something else; so a
+    command written without the aliases still follows the convention.
+    """
+    from bos.config import option_name
+    from cli._common import ALIASES
+
+    wanted = {option_name(key): aliases for key, aliases in ALIASES.items()}
+    for command in app.registered_commands:
+        params = list(inspect.signature(command.callback).parameters.items())
+        options = [(name, p.default) for name, p in params if isinstance(p.default, OptionInfo)]
+        taken = {d for _, info in options for decl in (info.param_decls or ()) for d in decl.split("/")}
+        taken |= {"--" + name.replace("_", "-") for name, info in options if not info.param_decls}
+        for name, info in options:
+            decls = tuple(info.param_decls or ()) or ("--" + name.replace("_", "-"),)
+            extra = [a for d in decls for a in wanted.get(d, ()) if a not in taken]
+            if extra:
+                info.param_decls = (*decls, *extra)
+                taken.update(extra)
 
 
 def _version_callback(value: bool) -> None:

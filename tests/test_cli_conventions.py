@@ -110,12 +110,22 @@ def test_bad_choice_and_bad_type_are_one_line_usage_errors():
 
 
 def test_same_aliases_in_every_command_that_takes_the_rig():
-    run, synth = invoke("run", "-h").stdout, invoke("synth", "-h").stdout
-    for canonical, alias in (("--focal-length-mm", "--focal-mm"), ("--pixel-pitch-um", "--pixel-um"),
-                             ("--camera-to-object-m", "--za-m"), ("--object-to-background-m", "--zd-m"),
-                             ("--object-width-mm", "--width-mm")):
-        for text in (run, synth):
-            assert f"{canonical}, {alias}" in text, (canonical, alias)
+    from cli._common import ALIASES
+
+    pairs = [(config.option_name(key), alias) for key, aliases in ALIASES.items() for alias in aliases]
+    seen = set()
+    for name in command_names():
+        text = invoke(name, "-h").stdout
+        for canonical, alias in pairs:
+            if canonical in text:
+                assert f"{canonical}, {alias}" in text, (name, canonical, alias)
+                seen.add(name)
+    assert {"run", "synth", "plan"} <= seen
+    # the alias really sets the same value
+    a = invoke("plan", "--focal-length-mm", 50, "--pixel-pitch-um", 5, "--camera-to-object-m", 1,
+               "--object-to-background-m", 0.5, "--object-width-mm", 100, "--json")
+    b = invoke("plan", "--focal-mm", 50, "--pixel-um", 5, "--za-m", 1, "--zd-m", 0.5, "--width-mm", 100, "--json")
+    assert a.exit_code == 0 and a.stdout == b.stdout
 
 
 # --------------------------------------------------------------------------- bos run without a file
