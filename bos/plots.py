@@ -382,6 +382,19 @@ def _nan_smooth(a: np.ndarray, size: int) -> np.ndarray:
         return np.where(den > 0.2, num / np.maximum(den, 1e-12), np.nan)
 
 
+def _edge_trimmed(a: np.ndarray) -> np.ndarray:
+    """``a`` with its outer 5 % along each axis (at least one line when there are 10 or more) set to NaN:
+    the vectors at the border of the grid are the least reliable ones (windows cut by the image edge)."""
+    a = np.array(a, float)
+    for axis, n in enumerate(a.shape):
+        if n >= 10:
+            m = max(1, int(round(0.05 * n)))
+            idx = [slice(None)] * a.ndim
+            idx[axis] = np.r_[0:m, n - m:n]
+            a[tuple(idx)] = np.nan
+    return a
+
+
 def _clip_line(p: np.ndarray, u: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> list[list[float]]:
     """The chord of the box [lo, hi] through p along the unit vector u."""
     t0, t1 = -np.inf, np.inf
@@ -407,6 +420,9 @@ def default_profile_line(data: Any) -> list[list[float]]:
       deflection, along the deflection there -- deflection points along the
       refractive-index gradient, so the line crosses the layer or plume.
     * No usable deflection: the horizontal line through the middle.
+
+    The outer 5 % of the grid along each side is not searched (vectors whose
+    windows reach past the image edge are the least reliable).
 
     Parameters
     ----------
@@ -438,14 +454,16 @@ def default_profile_line(data: Any) -> list[list[float]]:
         score = np.where(finite.any(axis=1), score, np.nan)
         if not np.isfinite(score).any():
             return middle
-        score = _nan_smooth(score[:, None], 3)[:, 0]
+        score = _edge_trimmed(_nan_smooth(score[:, None], 3)[:, 0])
+        if not np.isfinite(score).any():
+            return middle
         k = int(np.nanargmax(score))
         if vertical:
             return [[float(x[0]), float(y[k])], [float(x[-1]), float(y[k])]]
         return [[float(x[k]), float(y[0])], [float(x[k]), float(y[-1])]]
     size = max(1, min(5, min(ey.shape)))
     sy, sx = _nan_smooth(ey, size), _nan_smooth(ex, size)
-    mag = np.hypot(sy, sx)
+    mag = _edge_trimmed(np.hypot(sy, sx))
     if not np.isfinite(mag).any() or np.nanmax(mag) <= 0:
         return middle
     # the strongest point; on a plateau (within 5 % of the peak) the one nearest the centre
