@@ -94,6 +94,25 @@ def test_higher_harmonics_and_frame_sigma(sequence):
                      "at least 7 distinct phases")
 
 
+def test_stack_with_frame_rate_matches_the_phase_list(sequence, tmp_path):
+    # the same 5 frames as one multi-page TIFF, phases from the frame rate: 40 kHz at 40000/40.2 fps advances
+    # the phase by 0.2 cycle = 72 deg per frame (aliasing), i.e. the phases of the list
+    d = sequence["dir"]
+    frames = [iio.imread(d / f"frame{j:03d}.png") for j in range(5)]
+    iio.imwrite(tmp_path / "stack.tif", np.stack(frames))
+    exp = tmp_path / "exp.toml"
+    exp.write_text(EXPERIMENT.replace('reference = "ref.png"', f'reference = "{d / "ref.png"}"'))
+    rate = 40000 / 40.2
+    res = _run([str(exp), "--frames", str(tmp_path / "stack.tif"), "--frame-rate-hz", repr(rate), "--json"])
+    assert res.exit_code == 0, res.output
+    stack = json.loads(res.stdout)["summary"]
+    assert stack["phase_origin"] == "frame rate" and stack["distinct_phases"] == 5
+    res = _run([str(d / "exp.toml"), "--phases", str(d / "phases.csv"), "--no-figures", "--json"])
+    listed = json.loads(res.stdout)["summary"]
+    assert stack["peak_pressure_amplitude_pa"] == pytest.approx(listed["peak_pressure_amplitude_pa"], rel=1e-6)
+    assert [n["x_m"] for n in stack["nodes"]] == pytest.approx([n["x_m"] for n in listed["nodes"]], abs=1e-9)
+
+
 def test_failed_run_keeps_the_earlier_result(sequence, tmp_path):
     d = sequence["dir"]
     res = _run([str(d / "exp.toml"), "--phases", str(d / "phases.csv"), "--no-figures"])
