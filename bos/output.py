@@ -322,34 +322,18 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
         return out.commit()
 
 
-def _figures(result: RunResult, paths: dict[str, Path], line, samples) -> list[Path]:
+def _figures(result: RunResult, paths: dict[str, Path], line=None, samples=None) -> list[Path]:
+    """Draw the figures of a run from its result data (the content of the result file).
+
+    Everything is drawn by :func:`bos.plots.write_run_figures` from
+    :func:`as_result_data`, exactly as ``bos plot`` draws it from the file;
+    ``paths`` maps figure keys (``fig_*``) to where to write them (staged
+    paths); ``line`` is the profile line [m] (default: the one stored in the
+    attributes, else :func:`bos.plots.default_profile_line`).  ``samples`` is
+    not used (kept for callers that pass it).
+    """
     from . import plots
-    from .plots import Panel
 
-    disp = result.displacement
-    kw = {"x_m": result.x_m, "y_m": result.y_m, "profile_m": line}
-    out = [
-        plots.fields_figure([Panel(disp.dx, "displacement x", "px", "RdBu_r", True),
-                             Panel(disp.dy, "displacement y", "px", "RdBu_r", True),
-                             Panel(np.hypot(disp.dy, disp.dx), "displacement magnitude", "px", "magma")],
-                            path=paths["fig_displacement"], suptitle="apparent background displacement", **kw),
-        plots.fields_figure([Panel(result.eps_x * 1e6, "deflection x", "µrad", "RdBu_r", True),
-                             Panel(result.eps_y * 1e6, "deflection y", "µrad", "RdBu_r", True)],
-                            path=paths["fig_deflection"], suptitle="light-ray deflection", **kw),
-    ]
-    dens = result.density
-    if dens is not None:
-        out.append(plots.fields_figure([Panel(dens.density, "density", "kg/m³", "cividis"),
-                                        Panel(dens.temperature, "temperature", "K", "inferno")],
-                                       path=paths["fig_density"], suptitle="density and temperature", **kw))
-    curves, sigmas = [], []
-    for key, label in (("displacement_magnitude", "|d|"), ("deflection_x", "deflection x"),
-                       ("density", "density"), ("temperature", "temperature")):
-        if key in samples:
-            values, units = samples[key]
-            curves.append((values, label, units))
-            sigmas.append(samples[f"{key}_uncertainty"][0] if f"{key}_uncertainty" in samples else None)
-    out.append(plots.profile_figure(samples["s_m"][0], curves, sigmas=sigmas, path=paths["fig_profile"],
-                                    title="profile along the line shown in the field figures"))
-    return out
-
+    result_path = paths.get("result")
+    name = Path(result_path).stem if result_path is not None else None
+    return plots.write_run_figures(as_result_data(result), paths, line=line, name=name)
