@@ -438,6 +438,9 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
 
     if exp.reconstruction.kind == "none":
         raise ConfigError("bos periodic reconstructs the pressure: reconstruction.kind must be planar or axisymmetric")
+    if exp.reconstruction.kind == "planar" and exp.geometry.object_width_m is None:
+        raise ConfigError("missing value: geometry.object_width_mm (depth of the sound beam along the line of sight, "
+                          "needed for a planar reconstruction)")
     if len(frames) != frames.phases_rad.size:
         raise InputError(f"{frames.phases_rad.size} phases for {len(frames)} frames: the counts must match")
     n_distinct = periodic.check_phases(frames.phases_rad, harmonics=harmonics)

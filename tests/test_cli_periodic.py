@@ -156,6 +156,12 @@ def test_bad_inputs_exit_2(dummy):
     _one_line_exit_2(_run([exp, "--frames", frames, "--frame-rate-hz", "1000"]), "locks to the source")
     _one_line_exit_2(_run([exp, "--frames", frames]), "frame rate")
     _one_line_exit_2(_run([exp]), "--phases")
+    # settings that cannot give a pressure, refused before any frame is processed
+    ok = _write(dummy / "ok.csv", "frame,phase_deg\nf0.png,0\nf1.png,120\nf2.png,240\n")
+    (dummy / "none.toml").write_text(EXPERIMENT.replace('kind = "planar"', 'kind = "none"'))
+    _one_line_exit_2(_run([str(dummy / "none.toml"), "--phases", ok]), "planar or axisymmetric")
+    (dummy / "nowidth.toml").write_text(EXPERIMENT.replace("object_width_mm", "# object_width_mm"))
+    _one_line_exit_2(_run([str(dummy / "nowidth.toml"), "--phases", ok]), "object_width_mm")
     # a multi-frame TIFF with a phase list of another length
     iio.imwrite(dummy / "stack.tif", np.zeros((4, 16, 16), np.uint16))
     _one_line_exit_2(_run([exp, "--frames", str(dummy / "stack.tif"), "--phases", short]), "4 frame(s)")
