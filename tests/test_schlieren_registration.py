@@ -112,11 +112,15 @@ def test_masked_ncc_matches_direct_correlation():
         assert ncc[dy + m.shape[0] - 1, dx + m.shape[1] - 1] == pytest.approx(expected, abs=1e-9)
 
 
-@pytest.mark.parametrize("normal", [(0.0, 1.0), (math.cos(math.radians(40)), math.sin(math.radians(40)))])
-def test_automatic_registration_recovers_a_known_similarity(normal):
+@pytest.mark.parametrize("normal, bos_noise", [((0.0, 1.0), 0.0),
+                                               ((math.cos(math.radians(40)), math.sin(math.radians(40))), 4e-6)])
+def test_automatic_registration_recovers_a_known_similarity(normal, bos_noise):
+    """Noise-free BOS field, and one with noise of 3 % of the peak deflection on every vector."""
     rows = np.arange(2, 200, 4.0)
     cols = np.arange(2, 220, 4.0)
     ey, ex = blob_field(*np.meshgrid(rows, cols, indexing="ij"))
+    rng = np.random.default_rng(8)
+    ey, ex = ey + rng.normal(0, bos_noise, ey.shape), ex + rng.normal(0, bos_noise, ex.shape)
     knife = knife_view(TRUTH, (250, 280), normal, bos_rows=rows, bos_cols=cols)
     reg = register_fields(ey, ex, rows, cols, knife, knife_normal=normal, scale_guess=1.2)
     pts = np.array([[20, 20], [190, 30], [100, 110], [180, 200], [30, 210]], float)

@@ -40,6 +40,7 @@ from typing import Sequence
 import numpy as np
 
 from ..errors import InputError
+from .calibration import ratio_noise
 
 __all__ = ["Similarity", "similarity_from_points", "FieldRegistration", "register_fields", "masked_ncc"]
 
@@ -312,7 +313,8 @@ def _ncc(a, b) -> float:
 def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field, *, knife_normal,
                     bos_valid=None, knife_valid=None, scale_guess: float | None = None,
                     scale_range: float = 1.3, angle_step_deg: float = 5.0,
-                    max_rotation_deg: float = 180.0, work_px: int = 48, seed: int = 0) -> FieldRegistration:
+                    max_rotation_deg: float = 180.0, work_px: int = 48, smooth_cells: float = 1.0,
+                    seed: int = 0) -> FieldRegistration:
     """Find the similarity BOS px -> knife px by correlating the deflection fields.
 
     The knife picture senses ``eps . k``; for a candidate roll the BOS field
@@ -339,6 +341,9 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
         Roll search grid.
     work_px : int
         Longest side of the knife working grid of the coarse search.
+    smooth_cells : float
+        Gaussian smoothing (sigma, in BOS grid cells; the same length on the
+        knife picture) of both fields in the refinement and tile stages.
 
     Returns
     -------
@@ -426,7 +431,12 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
 
     # ---- refinement of the four parameters on a finer grid
     step_f = max(1.0, min(step_k / 2.0, max(H, W) / 128.0))
-    sm_f = max(step_f, k * max(bos.step)) / 2.0
+    # both fields smoothed alike (one BOS grid cell) for the fine stages: noise matters less, and a symmetric
+    # smoothing moves no feature
+    sm_f = max(step_f, smooth_cells * k * max(bos.step))
+    bos_f = _BosField(_smooth_nan(np.where(bos.valid, bos.ey, np.nan), smooth_cells),
+                      _smooth_nan(np.where(bos.valid, bos.ex, np.nan), smooth_cells), bos.rows, bos.cols,
+                      bos.valid) if smooth_cells > 0 else bos
     kf = _smooth_nan(np.where(kvalid, knife, np.nan), sm_f)
     fr = np.arange(0, H, step_f)
     fc = np.arange(0, W, step_f)
@@ -436,7 +446,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
     def warped(q, rows=FR, cols=FC):
         inv = _from_params(*q).inverse()
         br, bc = inv.apply(rows, cols)
-        return bos.sample(br, bc, _rotated_normal(knife_normal, q[1]))
+        return bos_f.sample(br, bc, _rotated_normal(knife_normal, q[1]))
 
     def residuals(z):
         q = params + z[:4] * scl
@@ -446,8 +456,8 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
 
     kscale = float(np.nanstd(kfs)) or 1.0
     scl = np.array([0.02, math.radians(1.0), 2.0, 2.0])
-    sol = least_squares(residuals, np.array([0.0, 0.0, 0.0, 0.0, 1.0, 0.0]), x_scale=1.0, diff_step=1e-3,
-                        method="trf", max_nfev=200)
+    sol = least_squares(residuals, np.array([0.0, 0.0, 0.0, 0.0, 1.0, 0.0]), x_scale=1.0, diff_step=0.05,
+                        method="trf", max_nfev=80, xtol=1e-4, ftol=1e-8)
     params = params + sol.x[:4] * scl
     best_ncc = _ncc(kfs, warped(params))
 
@@ -460,7 +470,9 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
     Ht, Wt = full.shape
     tile = int(max(16, min(Ht, Wt) // 6))
     src, dst = [], []
-    noise = np.nanstd(kfull - _smooth_nan(kfull, 2.0 * sm_f + 1.0))
+    # noise left in the smoothed knife field: per-pixel noise / (2 sqrt(pi) sigma) for a 2-D Gaussian
+    raw = ratio_noise(np.where(kvalid, knife, np.nan), kvalid)
+    noise = (raw if math.isfinite(raw) else 0.0) / (2.0 * math.sqrt(math.pi) * max(sm_f, 0.5))
     for r0 in range(0, Ht - tile + 1, tile):
         for c0 in range(0, Wt - tile + 1, tile):
             a = kfull[r0:r0 + tile, c0:c0 + tile]
