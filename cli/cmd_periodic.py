@@ -109,7 +109,15 @@ def register(app: typer.Typer) -> None:
         created = not out_dir.exists()
         prepare_output_dir(out_dir)
         try:
-            result = run_periodic(exp, frame_set, harmonics=harmonics)
+            if as_json or not sys.stderr.isatty():  # progress bars only on a terminal
+                result = run_periodic(exp, frame_set, harmonics=harmonics)
+            else:
+                from cli.cmd_run import make_progress
+
+                progress, callback = make_progress()
+                with progress:
+                    callback("read images", 1.0)
+                    result = run_periodic(exp, frame_set, harmonics=harmonics, progress=callback)
             files = save_periodic(result, exp)
         except BaseException:
             if created:
