@@ -7,7 +7,14 @@ a reference solver run in the same process on the same problem (scipy's
 sparse LU ``spsolve``; it cannot hold the largest grids, so the ratio is
 taken at a size it can, and printed with that size).
 
-Usage:  python benchmarks/bench_poisson.py [--quick]
+Weighted case (issue 9): weights 1/sigma^2 spanning ~x600 (sigma: a smooth x5 trend times
+independent x5 factors, like the per-vector uncertainty of a measured field) on a full
+rectangle.  Printed in the same run: the main solve with the DCT-preconditioned CG tried
+first (it hits its iteration limit, then falls back to multigrid; what ``method="auto"`` did
+before), with ``method="auto"`` (multigrid straight away), and the main solve plus the
+32-sample Monte Carlo uncertainty through one set-up, as a multiple of one auto solve.
+
+Usage:  python benchmarks/bench_poisson.py [--quick] [--weighted-only]
 """
 
 from __future__ import annotations
@@ -65,6 +72,37 @@ def multigrid_split(n):
     return t1 - t0, t2 - t1, time.perf_counter() - t2, len(its)
 
 
+def weighted_case(n):
+    """Gradient, sigma and weights of the weighted benchmark (weights spanning ~x600)."""
+    h, phi, gy, gx, _ = problem(n, False)
+    x = -1 + (np.arange(n) + 0.5) * h
+    rng = np.random.default_rng(1)
+    trend = 1 + 4 * np.exp(-((x[:, None] - 0.3) ** 2 + (x[None, :] + 0.2) ** 2) / 0.1)
+    sigma = 1e-3 * trend * np.exp(rng.uniform(0, np.log(5), (n, n)))  # sigma x5 * x5: w = 1/sigma^2 spans ~x600
+    return h, gy, gx, sigma
+
+
+def weighted(n):
+    from bos.reconstruct.poisson import integrate_gradient_with_uncertainty
+
+    h, gy, gx, sigma = weighted_case(n)
+    w = 1 / sigma**2
+    pb = poisson._Problem(gy, gx, h, None, None, w, "neumann", None)
+    opts = dict(spacing_m=h, weights=w, reference_region="left")
+    t0 = time.perf_counter()
+    integrate_gradient(gy, gx, method="pcg", **opts)
+    t1 = time.perf_counter()
+    integrate_gradient(gy, gx, method="auto", **opts)
+    t2 = time.perf_counter()
+    _, sig_phi, solver = integrate_gradient_with_uncertainty(gy, gx, sigma_y=sigma, sigma_x=sigma, n_samples=32,
+                                                            **opts)
+    t3 = time.perf_counter()
+    spread = w.max() / w.min()
+    print(f"weighted {n}^2 (weights spanning x{spread:.0f}; auto picks {poisson.auto_method(pb)!r}):\n"
+          f"  main solve, CG tried first: {t1 - t0:6.2f} s   auto: {t2 - t1:6.2f} s   ratio {(t1 - t0) / (t2 - t1):.1f}x\n"
+          f"  main solve + 32-sample uncertainty ({solver}): {t3 - t2:6.2f} s = {(t3 - t2) / (t2 - t1):.1f} auto solves")
+
+
 def main(quick=False):
     big_dct, big_mask, ref_n = (1024, 512, 256) if quick else (4096, 2048, 512)
     print(f"{'case':42s} {'time s':>8s} {'rel err':>9s}")
@@ -94,4 +132,6 @@ def main(quick=False):
 
 
 if __name__ == "__main__":
-    main(quick="--quick" in sys.argv)
+    if "--weighted-only" not in sys.argv:
+        main(quick="--quick" in sys.argv)
+    weighted(256 if "--quick" in sys.argv else 512)
