@@ -179,3 +179,20 @@ def test_n_samples_below_two_is_an_input_error():
     with pytest.raises(InputError, match="n_samples"):
         integrate_gradient_with_uncertainty(z, z, sigma_y=1.0, sigma_x=1.0, spacing_m=1.0, n_samples=1,
                                             reference_region="left")
+
+
+def test_density_functions_report_progress_and_the_solver_used():
+    from bos.media import Medium
+    from bos.reconstruct import axisymmetric_density, planar_density
+
+    rng = np.random.default_rng(8)
+    ey, ex = 1e-5 * rng.standard_normal((2, NY, NX))
+    sig = 1e-6 * np.exp(rng.uniform(0, np.log(30), (NY, NX)))  # weights span ~x900: multigrid
+    seen = []
+    res = planar_density(ey, ex, spacing_m=1e-3, width_m=0.1, medium=Medium(), reference_region="left",
+                         sigma_y=sig, sigma_x=sig, n_samples=4, progress=seen.append)
+    assert res.info["solver"] == "multigrid" and res.info["method"] == "auto"
+    assert seen == sorted(seen) and seen[-1] == 1.0 and len(seen) >= 5
+    seen.clear()
+    axisymmetric_density(ey, ex, spacing_m=1e-3, medium=Medium(), axis_position=8.0, progress=seen.append)
+    assert seen == [0.0, 1.0]
