@@ -219,15 +219,20 @@ def _encode_global(attrs: Mapping) -> tuple[dict[str, Any], list[str]]:
     json_keys: list[str] = []
     for key, value in attrs.items():
         key = _check_name(key, "attribute")
+        if isinstance(value, np.ndarray) and value.ndim == 0:
+            value = value.item()
         if isinstance(value, (str, os.PathLike)):
             out[key] = os.fspath(value)
             continue
         if isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_)):
             out[key] = value
             continue
-        if isinstance(value, (list, tuple, np.ndarray)) and len(value):
-            arr = np.asarray(value)
-            if arr.ndim == 1 and arr.dtype.kind in "iuf":
+        if isinstance(value, (list, tuple, np.ndarray)):
+            try:
+                arr = np.asarray(value)
+            except ValueError:  # ragged nested lists
+                arr = np.asarray([], dtype=object)
+            if arr.ndim == 1 and arr.size and arr.dtype.kind in "iuf":
                 out[key] = arr.astype(np.int64) if arr.dtype.kind == "u" else arr
                 continue
         out[key] = json.dumps(_json_ready(value), ensure_ascii=False, allow_nan=False)
