@@ -40,6 +40,18 @@ def refuse_overwriting_input(output: Path, *inputs: Path) -> None:
             raise InputError(f"output {output} is the input file {src}; choose another output path")
 
 
+def _reader_went_away() -> "typer.Exit":
+    """Standard output was a pipe whose reader stopped (``bos export ... --csv - | head``): end quietly."""
+    import os
+    import sys
+
+    try:  # the interpreter's final flush must not fail on the closed pipe either
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # not a real file descriptor (e.g. a test runner)
+        pass
+    return typer.Exit(0)
+
+
 def _names(variables: Optional[list[str]]) -> Optional[list[str]]:
     if not variables:
         return None
@@ -82,16 +94,19 @@ def register(app: typer.Typer) -> None:
             unknown = [n for n in names if n not in data.variables]
             if unknown:
                 raise InputError(f"unknown variable(s) {', '.join(unknown)}; have {', '.join(sorted(data.variables))}")
-        if profile is not None:
-            line = parse_profile_mm(profile)
-            samples = sample_profile(data, line, names=tuple(names or PROFILE_FIELDS))
-            if not samples:
-                raise InputError("none of the requested variables is a 2-D field in this result")
-            write_profile_csv("-" if to_stdout else csv, samples)
-            columns = list(samples)
-        else:
-            store.export_csv("-" if to_stdout else csv, data, variables=names)
-            columns = None
+        try:
+            if profile is not None:
+                line = parse_profile_mm(profile)
+                samples = sample_profile(data, line, names=tuple(names or PROFILE_FIELDS))
+                if not samples:
+                    raise InputError("none of the requested variables is a 2-D field in this result")
+                write_profile_csv("-" if to_stdout else csv, samples)
+                columns = list(samples)
+            else:
+                store.export_csv("-" if to_stdout else csv, data, variables=names)
+                columns = None
+        except BrokenPipeError:
+            raise _reader_went_away() from None
         if as_json:
             emit_json({"file": str(csv), "kind": "profile" if profile else "fields", "columns": columns})
         elif not to_stdout:

@@ -140,3 +140,23 @@ def test_inspect_shows_display_units(result):
     assert info["variables"]["displacement_x"]["units"] == "px"
     assert info["variables"]["temperature"]["units"] == "K"
     assert info["summary"]["peak_temperature_rise_k"] == 10.0
+
+
+def test_closed_pipe_on_standard_output_ends_quietly(tmp_path):
+    import subprocess
+    import sys
+
+    y, x = np.linspace(0.01, -0.01, 300), np.linspace(-0.01, 0.01, 400)  # 120 000 rows: far more than a pipe holds
+    path = write_result(tmp_path / "big.nc",
+                        coords={"y": (y, {"units": "m", "long_name": "y (up)", "axis": "Y"}),
+                                "x": (x, {"units": "m", "long_name": "x", "axis": "X"})},
+                        variables={"temperature": (("y", "x"), np.full((300, 400), 300.0),
+                                                   {"units": "K", "long_name": "gas temperature"})})
+    proc = subprocess.Popen([sys.executable, "-c", "from cli.app import main; main()", "export", str(path),
+                             "--csv", "-"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    first = proc.stdout.readline()
+    proc.stdout.close()  # like `| head -1`
+    err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) == 0, err
+    assert first.decode().strip() == "y [m],x [m],temperature [K]"
+    assert err.strip() == ""
