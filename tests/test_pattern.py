@@ -387,8 +387,9 @@ def test_pdf_soft_and_noise_match_the_raster(tmp_path):
         assert np.corrcoef(pdf.ravel(), raster.ravel())[0, 1] > 0.9
 
 
-def test_pdf_structure_xref_offsets(tmp_path):
-    spec, _ = _spec(dot_diameter_mm=1.0)
+@pytest.mark.parametrize("kind", ["dots", "noise"])
+def test_pdf_structure_xref_offsets(tmp_path, kind):
+    spec, _ = _spec(dot_diameter_mm=1.0, kind=kind)
     data = P.write_pattern(tmp_path / "p.pdf", spec).path.read_bytes()
     assert data.startswith(b"%PDF-1.4") and data.rstrip().endswith(b"%%EOF")
     start = int(re.search(rb"startxref\s+(\d+)", data).group(1))
