@@ -15,7 +15,6 @@ import re
 import numpy as np
 import pytest
 from PIL import Image
-from scipy import ndimage
 from scipy.optimize import brentq
 from scipy.spatial import cKDTree
 
