@@ -445,6 +445,8 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
         raise InputError(f"{frames.phases_rad.size} phases for {len(frames)} frames: the counts must match")
     n_distinct = periodic.check_phases(frames.phases_rad, harmonics=harmonics)
     rig, medium = exp.rig(), exp.medium_model()
+    # one linear operator for both parts and for their uncertainty: uniform weights
+    rec_exp = dataclasses.replace(exp, reconstruction=dataclasses.replace(exp.reconstruction, weighted=False))
     first, fields, warnings, sha = _measure_all(exp, frames, progress)
     d0 = fields[0]
     stack = {k: np.stack([getattr(f, k) for f in fields]) for k in ("dy", "dx", "sigma_dy", "sigma_dx")}
@@ -457,20 +459,35 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
         raise InputError("no vector has a valid fit over the phases (every grid point lost in some frame)")
     if progress is not None:
         progress("reconstruction", 0.0)
+    # weights of the (weighted) integration: the per-frame correlation uncertainties propagated through the
+    # fit (stable: averaged over the frames); residual-based sigmas with few degrees of freedom scatter so
+    # much that the weights, hence the reconstruction operator, would change with the noise
+    pinv = np.linalg.pinv(periodic._design(frames.phases_rad, harmonics))
+
+    def propagated(sig, row):
+        return np.sqrt(np.nansum(pinv[row][:, None, None] ** 2 * np.asarray(sig, float) ** 2, axis=0))
+
     parts = []
-    for part, sy, sx in (("real", fit_y.sigma_real[0], fit_x.sigma_real[0]),
-                         ("imag", fit_y.sigma_imag[0], fit_x.sigma_imag[0])):
+    for part, sy, sx in (("real", propagated(stack["sigma_dy"], 1), propagated(stack["sigma_dx"], 1)),
+                         ("imag", propagated(stack["sigma_dy"], 2), propagated(stack["sigma_dx"], 2))):
         dy, dx = getattr(a_y, part), getattr(a_x, part)
         bad = masked | invalid
         disp = dataclasses.replace(d0, dy=np.where(bad, np.nan, dy), dx=np.where(bad, np.nan, dx),
                                    sigma_dy=np.where(bad, np.nan, sy), sigma_dx=np.where(bad, np.nan, sx),
                                    invalid=invalid.copy(), camera_shift=(0.0, 0.0))
-        parts.append((disp, stages.reconstruct(disp, exp, image_shape=first.reference.shape, rig=rig, medium=medium)))
+        parts.append((disp, stages.reconstruct(disp, rec_exp, image_shape=first.reference.shape, rig=rig,
+                                               medium=medium)))
     (disp_re, (eps_y, eps_x, y_m, x_m, dens_re)), (_, (_, _, _, _, dens_im)) = parts
     if progress is not None:
         progress("reconstruction", 1.0)
+    sig_rho = _residual_density_sigma(rec_exp, frames, (fit_y, fit_x), stack, d0, masked | invalid,
+                                      shape=first.reference.shape, rig=rig, medium=medium)
+    if sig_rho is None:  # no residual degrees of freedom: per-vector uncertainties propagated (Monte Carlo)
+        sig_rho, pressure_sigma_from = (dens_re.sigma_density, dens_im.sigma_density), "propagated frame sigma"
+    else:
+        pressure_sigma_from = "frame residuals through the reconstruction"
     pres = acoustics.complex_pressure(dens_re.density, dens_im.density, medium=medium,
-                                      sigma_real=dens_re.sigma_density, sigma_imag=dens_im.sigma_density)
+                                      sigma_real=sig_rho[0], sigma_imag=sig_rho[1])
     spacing = (float(np.median(np.diff(y_m))) if y_m.size > 1 else rig.object_pixel_m,
                float(np.median(np.diff(x_m))) if x_m.size > 1 else rig.object_pixel_m)
     f_src = exp.source.frequency_hz
@@ -529,6 +546,7 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
     summary: dict[str, Any] = {
         "frames": len(frames), "distinct_phases": n_distinct, "phase_origin": frames.origin,
         "harmonics_fitted": int(harmonics), "uncertainty_from": fit_y.uncertainty_source,
+        "pressure_uncertainty_from": pressure_sigma_from,
         "uncertainty_note": "1-sigma values cover the random frame-to-frame error only; the smoothing of the "
                             "correlation windows (window_attenuation_db) and errors repeated in every frame are "
                             "not included",
@@ -584,6 +602,74 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
 def _pixels(data, px_attrs: dict, long_name: str) -> dict[str, Any]:
     """A pixel quantity with the same unit attributes as the run file's displacement."""
     return {"dims": ("y", "x"), "data": np.asarray(data, float), "attrs": {**px_attrs, "long_name": long_name}}
+
+
+#: above this many frames the residual propagation uses random sign combinations instead of every frame
+_EXACT_FRAMES = 48
+_RANDOM_COMBINATIONS = 24
+
+
+def _residual_density_sigma(exp: Experiment, frames: FrameSet, fits, stack: dict[str, np.ndarray], d0, bad,
+                            *, shape, rig, medium):
+    """1-sigma of the real and imaginary density amplitude from the frames' own noise.
+
+    The complex amplitude is a linear combination of the frames, A = sum_k w_k d_k (w_k from the
+    least-squares pseudo-inverse), so its random error is sum_k w_k n_k with n_k the noise field of
+    frame k.  The fit residuals r_k = d_k - model_k are realisations of n_k with their true spatial
+    correlation (overlapping windows, shared texture); each is reconstructed with the same linear
+    chain (unweighted), and Var(Re rho) = n/(n-p) sum_k (Re w_k)^2 R(r_k)^2 (likewise Im).  For many
+    frames random sign combinations of the residuals are used (wild bootstrap).  Returns None when
+    fewer than 2 residual degrees of freedom remain.
+
+    References
+    ----------
+    Wu, C. F. J. (1986). Jackknife, bootstrap and other resampling methods in regression analysis.
+    Ann. Statist. 14:1261-1295 (residual resampling with random signs).
+    """
+    from . import periodic, stages
+
+    phi = frames.phases_rad
+    fit_y, fit_x = fits
+    h = fit_y.amplitude.shape[0]
+    n, p = phi.size, 2 * h + 1
+    if n - p < 2:
+        return None
+    design = periodic._design(phi, h)
+    weights = np.linalg.pinv(design)          # (p, n): coef = weights @ d
+    w_re, w_im = weights[1], weights[2]
+    residual = {}
+    for comp, fit in (("dy", fit_y), ("dx", fit_x)):
+        model = fit.mean[None] + sum((fit.amplitude[j][None] * np.exp(1j * (j + 1) * phi)[:, None, None]).real
+                                     for j in range(h))
+        r = stack[comp] - model
+        residual[comp] = np.where(np.isfinite(r), r, 0.0)
+    count = np.maximum(fit_y.n_frames, p + 1)
+    scale = count / (count - p)
+    zeros = np.where(bad, np.nan, 0.0)
+    rho0 = float(medium.ambient_density)
+
+    def density(dy, dx):
+        disp = dataclasses.replace(d0, dy=np.where(bad, np.nan, dy), dx=np.where(bad, np.nan, dx), sigma_dy=zeros,
+                                   sigma_dx=zeros, invalid=bad & ~np.asarray(d0.masked, bool), camera_shift=(0.0, 0.0))
+        dens = stages.reconstruct(disp, exp, image_shape=shape, rig=rig, medium=medium)[4]
+        return np.asarray(dens.density, float) - rho0
+
+    var_re = np.zeros(bad.shape)
+    var_im = np.zeros(bad.shape)
+    if n <= _EXACT_FRAMES:
+        for k in range(n):
+            rk = density(residual["dy"][k], residual["dx"][k]) ** 2
+            var_re += w_re[k] ** 2 * rk
+            var_im += w_im[k] ** 2 * rk
+    else:
+        rng = np.random.default_rng(0)
+        for _ in range(_RANDOM_COMBINATIONS):
+            for var, w in ((var_re, w_re), (var_im, w_im)):
+                c = w * rng.choice((-1.0, 1.0), size=n)
+                var += density(np.tensordot(c, residual["dy"], 1), np.tensordot(c, residual["dx"], 1)) ** 2
+        var_re /= _RANDOM_COMBINATIONS
+        var_im /= _RANDOM_COMBINATIONS
+    return np.sqrt(scale * var_re), np.sqrt(scale * var_im)
 
 
 def _field(data, units: str, long_name: str, **extra) -> dict[str, Any]:

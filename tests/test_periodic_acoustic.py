@@ -49,7 +49,8 @@ def _gradient(kind, p0, y, x):
     return p0 * e * dg, -1j * K_WAVE * p0 * e * g
 
 
-def render_frames(d: Path, *, shape, deflection_for_phase, phases_deg, seed: int, experiment: str) -> None:
+def render_frames(d: Path, *, shape, deflection_for_phase, phases_deg, seed: int, experiment: str,
+                  noise_seed: int | None = None) -> None:
     """Reference + one frame per listed phase (16-bit PNG, camera noise), a phases CSV and an experiment file."""
     d.mkdir(parents=True, exist_ok=True)
     bg = synthetic.random_dots(shape=shape, dot_diameter_px=2.6, density=0.5, seed=seed, margin_px=20)
@@ -57,17 +58,19 @@ def render_frames(d: Path, *, shape, deflection_for_phase, phases_deg, seed: int
     def save(name, img):
         iio.imwrite(d / name, np.clip(np.round(img), 0, 65535).astype(np.uint16))
 
-    save("ref.png", synthetic.render(bg, seed=seed + 1000, bit_depth=16))
+    noise_seed = seed if noise_seed is None else noise_seed
+    save("ref.png", synthetic.render(bg, seed=noise_seed + 1000, bit_depth=16))
     rows = ["frame,phase_deg"]
     for j, ph in enumerate(phases_deg):
         disp = synthetic.displacement_from_field(deflection_for_phase(ph), rig=RIG, shape=shape)
-        save(f"frame{j:03d}.png", synthetic.render(bg, displacement=disp, seed=seed + 2000 + j, bit_depth=16))
+        save(f"frame{j:03d}.png", synthetic.render(bg, displacement=disp, seed=noise_seed + 2000 + j, bit_depth=16))
         rows.append(f"frame{j:03d}.png,{ph:.6f}")
     (d / "phases.csv").write_text("\n".join(rows) + "\n")
     (d / "exp.toml").write_text(experiment)
 
 
-def render_sequence(d: Path, *, kind: str, spl_db: float, phases_deg, seed: int = 5) -> dict:
+def render_sequence(d: Path, *, kind: str, spl_db: float, phases_deg, seed: int = 5,
+                    noise_seed: int | None = None) -> dict:
     """The planar beam (depth WIDTH_M along the line of sight) at the listed source phases."""
     p0 = float(spl_to_pressure_amplitude(spl_db))
     f = WIDTH_M * MEDIUM.gladstone_dale / MEDIUM.ambient_index / C**2
@@ -82,7 +85,7 @@ def render_sequence(d: Path, *, kind: str, spl_db: float, phases_deg, seed: int 
         return deflection
 
     render_frames(d, shape=SHAPE, deflection_for_phase=deflection_for_phase, phases_deg=phases_deg, seed=seed,
-                  experiment=EXPERIMENT)
+                  experiment=EXPERIMENT, noise_seed=noise_seed)
     return {"dir": d, "p0": p0, "kind": kind}
 
 
@@ -246,3 +249,17 @@ def test_axisymmetric_standing_column(tmp_path):
         true_spl = 20 * math.log10(abs(p0 * math.cos(K_WAVE * a["y_m"] + THETA)) / math.sqrt(2) / 20e-6)
         assert a["spl_db"] == pytest.approx(true_spl, abs=1.0)
     assert len(s["antinodes"]) >= 3
+
+
+def test_stated_uncertainty_matches_the_scatter_between_noise_realisations(tmp_path):
+    # same background and sound field, independent camera noise: the difference of the two complex
+    # pressures holds only the random error, whose size the stated 1-sigma values claim
+    runs = [_run(render_sequence(tmp_path / f"n{k}", kind="standing", spl_db=140.0, phases_deg=np.arange(6) * 60.0,
+                                 seed=13, noise_seed=100 * k)) for k in (1, 2)]
+    a, b = (r.pressure for r in runs)
+    for part in ("real", "imag"):
+        diff = getattr(a.pressure, part) - getattr(b.pressure, part)
+        sig = np.hypot(getattr(a, f"sigma_{part}"), getattr(b, f"sigma_{part}"))
+        z = (diff / sig)[np.isfinite(diff / sig)]
+        # rms of the normalised difference ~1 if the stated sigma is right (bounds: factor 2 either way)
+        assert 0.5 < np.sqrt(np.mean(z**2)) < 2.0, (part, np.sqrt(np.mean(z**2)))
