@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import secrets
 from pathlib import Path
 from typing import Any, Optional
@@ -29,8 +30,6 @@ def build_rig(experiment_file: Path | None, options: dict[str, Any]):
     for opt, key in DISTANCES:  # a distance named on the command line wins over the file's others
         if sum(v is not None for v in dist.values()) > 2 and opt not in given:
             dist[key] = None
-    import dataclasses
-
     exp = dataclasses.replace(exp, geometry=dataclasses.replace(geo, **dist))
     return exp.rig()
 
