@@ -459,19 +459,22 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
         raise InputError("no vector has a valid fit over the phases (every grid point lost in some frame)")
     if progress is not None:
         progress("reconstruction", 0.0)
-    # weights of the (weighted) integration: the per-frame correlation uncertainties propagated through the
-    # fit (stable: averaged over the frames); residual-based sigmas with few degrees of freedom scatter so
-    # much that the weights, hence the reconstruction operator, would change with the noise
+    bad = masked | invalid
+    # random error of P: the frames' residual fields through the same linear chain (see the function)
+    sig_rho = _residual_density_sigma(rec_exp, frames, (fit_y, fit_x), stack, d0, bad,
+                                      shape=first.reference.shape, rig=rig, medium=medium)
     pinv = np.linalg.pinv(periodic._design(frames.phases_rad, harmonics))
 
     def propagated(sig, row):
         return np.sqrt(np.nansum(pinv[row][:, None, None] ** 2 * np.asarray(sig, float) ** 2, axis=0))
 
     parts = []
-    for part, sy, sx in (("real", propagated(stack["sigma_dy"], 1), propagated(stack["sigma_dx"], 1)),
-                         ("imag", propagated(stack["sigma_dy"], 2), propagated(stack["sigma_dx"], 2))):
+    for part, row in (("real", 1), ("imag", 2)):
+        if sig_rho is None:  # no residual dof: per-frame correlation sigmas, Monte Carlo in the reconstruction
+            sy, sx = propagated(stack["sigma_dy"], row), propagated(stack["sigma_dx"], row)
+        else:  # uncertainty known already: skip the Monte Carlo
+            sy = sx = np.zeros(bad.shape)
         dy, dx = getattr(a_y, part), getattr(a_x, part)
-        bad = masked | invalid
         disp = dataclasses.replace(d0, dy=np.where(bad, np.nan, dy), dx=np.where(bad, np.nan, dx),
                                    sigma_dy=np.where(bad, np.nan, sy), sigma_dx=np.where(bad, np.nan, sx),
                                    invalid=invalid.copy(), camera_shift=(0.0, 0.0))
@@ -480,9 +483,7 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
     (disp_re, (eps_y, eps_x, y_m, x_m, dens_re)), (_, (_, _, _, _, dens_im)) = parts
     if progress is not None:
         progress("reconstruction", 1.0)
-    sig_rho = _residual_density_sigma(rec_exp, frames, (fit_y, fit_x), stack, d0, masked | invalid,
-                                      shape=first.reference.shape, rig=rig, medium=medium)
-    if sig_rho is None:  # no residual degrees of freedom: per-vector uncertainties propagated (Monte Carlo)
+    if sig_rho is None:
         sig_rho, pressure_sigma_from = (dens_re.sigma_density, dens_im.sigma_density), "propagated frame sigma"
     else:
         pressure_sigma_from = "frame residuals through the reconstruction"
