@@ -112,11 +112,12 @@ def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, 
         "deflection_y": _var(-np.asarray(result.eps_y), "rad",
                              "light-ray deflection angle, y component (up; toward higher index)"),
         "deflection_x": _var(result.eps_x, "rad", "light-ray deflection angle, x component (toward higher index)"),
-        "masked": _var(np.asarray(disp.masked, bool), "1", "user mask: 1 = no data requested here",
-                       flag_meanings="measured masked"),
-        "invalid": _var(np.asarray(invalid_flags(disp, result.density), bool), "1",
+        # flags as CF wants them (signed bytes, flag_values of the same type) for every writer of these variables
+        "masked": _var(np.asarray(disp.masked, np.int8), "1", "user mask: 1 = no data requested here",
+                       flag_values=np.array([0, 1], np.int8), flag_meanings="measured masked"),
+        "invalid": _var(np.asarray(invalid_flags(disp, result.density), np.int8), "1",
                         "validation: 1 = vector rejected (outlier, no correlation peak, not reconstructable)",
-                        flag_meanings="valid rejected"),
+                        flag_values=np.array([0, 1], np.int8), flag_meanings="valid rejected"),
     }
     dens = result.density
     if dens is not None:
