@@ -183,6 +183,12 @@ def test_every_unit_parses_to_the_right_dimensionality(results):
     pytest.importorskip("cf_xarray")
     from cf_xarray.units import units as ureg
 
+    try:  # UDUNITS-2 itself, through cfunits, where the C library is installed
+        from cfunits import Units
+    except (ImportError, OSError):
+        Units = None
+    udunits_si = {"[length]": "m", "": "1", "[mass] / [length] ** 3": "kg m-3", "[temperature]": "K",
+                  "[mass] / [length] / [time] ** 2": "Pa"}
     seen = set()
     for path in results.values():
         ds = open_result(path)
@@ -191,6 +197,9 @@ def test_every_unit_parses_to_the_right_dimensionality(results):
             assert "px" not in units.split(), name  # pint reads px as a CSS pixel (1/96 inch)
             dim = ureg.Quantity(1.0, units).dimensionality
             assert str(dim) == (EXPECTED_DIMENSIONALITY[name] or "dimensionless"), (name, units, dim)
+            if Units is not None:
+                u, ref = Units(units), Units(udunits_si[EXPECTED_DIMENSIONALITY[name]])
+                assert u.isvalid and u.equivalent(ref), (name, units)
             seen.add(name)
     assert seen == set(EXPECTED_DIMENSIONALITY)
     # radians are dimensionless but convert as angles: 1 rad = 1e6 µrad
