@@ -688,7 +688,9 @@ this many valid cells are factorised once (sparse LU, :func:`prepare_sparse`) an
 and all Monte Carlo samples reuse the factors (samples in blocks of right-hand sides).  Measured on
 the 4 MP weighted problem (65 025 unknowns, loaded machine): factorisation 1.2 s + 32 exact solves
 1.1 s, against 4.2 s for 32 multigrid-CG solves to rtol 1e-3.  The factorisation grows like
-n^1.5 (and its memory like n log n), so beyond ~150 000 unknowns multigrid is used."""
+n^1.5 (and its memory like n log n): on a 24 MP run (373 751 unknowns) it took 15 s + 6.3 s for 32
+solves with 27.7 M non-zeros (1.2 GB peak), no faster than multigrid samples, so beyond
+~150 000 unknowns multigrid is used."""
 
 
 def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, method, *, samples=False):
