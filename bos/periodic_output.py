@@ -763,6 +763,13 @@ def _mark(ax, summary: dict[str, Any], line) -> None:
                     color="cyan" if marker == "o" else "white", label=label)
 
 
+def _swr_text(summary: dict[str, Any]) -> str:
+    from .acoustics import SWR_CAP
+
+    v = float(summary["standing_wave_ratio"])
+    return f"≥ {SWR_CAP:.0f}" if v >= SWR_CAP else f"{v:.3g}"
+
+
 def _figures(result: PeriodicResult, paths: dict[str, Path]) -> None:
     from . import plots
     from .plots import Panel
@@ -776,7 +783,7 @@ def _figures(result: PeriodicResult, paths: dict[str, Path]) -> None:
                                      Panel(pr.sigma_spl_db, "SPL uncertainty (1σ)", "dB", "viridis"),
                                      Panel(result.reflection, "|R| (0 travelling, 1 standing)", "1", "cividis")],
                                     x_m=x_m, y_m=y_m, suptitle=f"sound pressure level: {s['wave_kind']} wave, "
-                                                              f"SWR {s['standing_wave_ratio']:.3g} along the beam",
+                                                              f"SWR {_swr_text(s)} along the beam",
                                     **flags)
     for ax in fig.axes[:1]:
         _mark(ax, s, line)
@@ -801,7 +808,7 @@ def _profile_figure(result: PeriodicResult, path: Path) -> None:
               ProfileCurve(prof["sound_pressure_level"], "SPL", "dB"),
               ProfileCurve(phase, "phase (unwrapped)", "rad")]
     fig = build_profile_figure(prof["s_m"], curves,
-                               title=f"along the beam: {s['wave_kind']} wave, SWR {s['standing_wave_ratio']:.3g}; "
+                               title=f"along the beam: {s['wave_kind']} wave, SWR {_swr_text(s)}\n"
                                      "dotted: nodes (blue), antinodes (red)")
     for ax in fig.axes:
         for n in s["nodes"]:

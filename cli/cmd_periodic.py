@@ -46,6 +46,10 @@ def _print(summary: dict[str, Any], cautions: list[str], files: list[Path]) -> N
         v = summary.get(key)
         return "-" if v is None else f"{format(v * scale, fmt)}{unit}"
 
+    from bos.acoustics import SWR_CAP
+
+    v = float(summary["standing_wave_ratio"])
+    swr = f"≥ {SWR_CAP:.0f}" if v >= SWR_CAP else f"{v:.3g}"
     rows = [
         ("frames / distinct phases", f"{summary['frames']} / {summary['distinct_phases']} ({summary['phase_origin']})"),
         ("peak displacement amplitude", num("peak_displacement_amplitude_px", ".4f", unit=" px")),
@@ -55,7 +59,7 @@ def _print(summary: dict[str, Any], cautions: list[str], files: list[Path]) -> N
         ("median SPL uncertainty in the beam", num("median_spl_uncertainty_db_in_beam", ".2f", unit=" dB")),
         ("wavelength c/f | measured", f"{num('wavelength_expected_m', '.4g', 1e3)} | "
                                        f"{num('wavelength_measured_m', '.4g', 1e3)} mm"),
-        ("standing-wave ratio along the beam", f"{summary['standing_wave_ratio']:.3g} ({summary['wave_kind']})"),
+        ("standing-wave ratio along the beam", f"{swr} ({summary['wave_kind']})"),
         ("nodes along the beam (x, y) mm", "; ".join(f"{n['x_m'] * 1e3:.2f}, {n['y_m'] * 1e3:.2f}"
                                                      for n in summary["nodes"]) or "-"),
         ("antinodes: SPL dB", "; ".join(f"{a['spl_db']:.1f}" for a in summary["antinodes"]) or "-"),
