@@ -548,6 +548,7 @@ def run_periodic(exp: Experiment, frames: FrameSet, *, harmonics: int = 1,
         "frames": len(frames), "distinct_phases": n_distinct, "phase_origin": frames.origin,
         "harmonics_fitted": int(harmonics), "uncertainty_from": fit_y.uncertainty_source,
         "pressure_uncertainty_from": pressure_sigma_from,
+        "reconstruction_weights": "uniform (one linear operator for both parts and their uncertainty)",
         "uncertainty_note": "1-sigma values cover the random frame-to-frame error only; the smoothing of the "
                             "correlation windows (window_attenuation_db) and errors repeated in every frame are "
                             "not included",
