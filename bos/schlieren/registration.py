@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Sequence
 
 import numpy as np
 
@@ -377,7 +376,6 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
         n = max(3, int(math.ceil(math.log(hi / lo) / math.log(1.1))) + 1)
         scales = np.exp(np.linspace(math.log(lo), math.log(hi), n))
     step_k = max(1.0, max(H, W) / work_px)
-    bos_step_k_min = float(scales.min()) * min(bos.step)
     smooth = max(step_k, float(scales.max()) * max(bos.step)) / 2.0
     kw = _smooth_nan(np.where(kvalid, knife, np.nan), smooth)
     kr = np.arange(0, H, step_k)

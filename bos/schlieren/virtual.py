@@ -32,7 +32,6 @@ from __future__ import annotations
 import math
 import re
 from pathlib import Path
-from typing import Sequence
 
 import numpy as np
 
