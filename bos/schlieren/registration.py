@@ -351,7 +351,7 @@ def register_fields(bos_eps_y, bos_eps_x, bos_rows_px, bos_cols_px, knife_field,
     Raises
     ------
     InputError
-        No common structure (the correlation never rises above 0.3).
+        No common structure (the overlap-weighted correlation never reaches :data:`MIN_CORRELATION`).
     """
     from skimage.measure import ransac
     from skimage.registration import phase_cross_correlation
