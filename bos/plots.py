@@ -254,9 +254,9 @@ def figure_data(source: Any, *, name: str | None = None) -> FigureData:
 
     Parameters
     ----------
-    source : FigureData, bos.store.ResultData, xarray.Dataset or path
-        The result (a path is opened with ``bos.open_result`` when the
-        package provides it, else :func:`bos.store.read_result`).
+    source : FigureData, bos.store.ResultData, xarray.Dataset, RunResult or path
+        The result (a path is read with :func:`bos.store.read_result`, a
+        :class:`bos.stages.RunResult` through :func:`bos.output.as_result_data`).
     name : str, optional
         Run name for titles (default: from the attributes, or the file name).
 
@@ -276,6 +276,10 @@ def figure_data(source: Any, *, name: str | None = None) -> FigureData:
     if isinstance(source, FigureData):
         return dataclasses.replace(source, name=name) if name else source
     default_name = "result"
+    if hasattr(source, "displacement") and hasattr(source, "eps_x"):     # a RunResult: its file content
+        from .output import as_result_data
+
+        source = as_result_data(source)
     if isinstance(source, (str, os.PathLike)):
         default_name = Path(source).stem
         source = _open(source)

@@ -251,10 +251,6 @@ def report_html(source: Any, *, name: str | None = None, line: Sequence[Sequence
     import bos
     from . import plots
 
-    if hasattr(source, "displacement") and hasattr(source, "eps_x"):       # a RunResult
-        from .output import as_result_data
-
-        source = as_result_data(source)
     fd = plots.figure_data(source, name=name)
     attrs = fd.attrs
     line = plots.profile_line_of(fd) if line is None else line
