@@ -50,6 +50,7 @@ __all__ = [
     "profile",
     "export_profile_csv",
     "csv_label",
+    "csv_columns",
     "display_units",
     "write_table",
 ]
@@ -719,17 +720,20 @@ def export_csv(path: str | os.PathLike | IO[str], result: ResultData, *,
         Output directory missing or unwritable.
     """
     names, dims = _grid_variables(result, variables)
-    axes, labels = [], []
-    for dim in dims:
-        if dim not in result.coords:
-            raise InputError(f"dimension {dim!r} has no coordinate in the result")
-        c = result.coords[dim]
-        axes.append(np.asarray(c.data, dtype=np.float64))
-        labels.append(csv_label(dim, display_units(c.attrs)))
+    axes = [np.asarray(result.coords[dim].data, dtype=np.float64) for dim in dims]
     grids = np.meshgrid(*axes, indexing="ij")
     columns = [g.ravel() for g in grids] + [np.asarray(result.variables[n].data, dtype=np.float64) for n in names]
-    labels += [csv_label(n, display_units(result.variables[n].attrs)) for n in names]
-    return write_table(path, labels, columns)
+    return write_table(path, csv_columns(result, variables), columns)
+
+
+def csv_columns(result: ResultData, variables: Sequence[str] | None = None) -> list[str]:
+    """Header labels :func:`export_csv` writes for ``variables`` (coordinates first)."""
+    names, dims = _grid_variables(result, variables)
+    missing = [d for d in dims if d not in result.coords]
+    if missing:
+        raise InputError(f"dimension {missing[0]!r} has no coordinate in the result")
+    return ([csv_label(d, display_units(result.coords[d].attrs)) for d in dims]
+            + [csv_label(n, display_units(result.variables[n].attrs)) for n in names])
 
 
 def profile(

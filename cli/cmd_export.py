@@ -101,10 +101,10 @@ def register(app: typer.Typer) -> None:
                 if not samples:
                     raise InputError("none of the requested variables is a 2-D field in this result")
                 write_profile_csv("-" if to_stdout else csv, samples)
-                columns = list(samples)
+                columns = [store.csv_label(k, units) for k, (_, units) in samples.items()]
             else:
                 store.export_csv("-" if to_stdout else csv, data, variables=names)
-                columns = None
+                columns = store.csv_columns(data, names)
         except BrokenPipeError:
             raise _reader_went_away() from None
         if as_json:

@@ -64,6 +64,14 @@ def test_fields_csv_has_units_in_its_header(tmp_path, result):
     table = np.genfromtxt(out, delimiter=",", names=True)
     np.testing.assert_allclose(table["temperature_K"], _temperature().ravel(), rtol=1e-9)
     np.testing.assert_allclose(table["displacement_x_px"], 0.01 * _temperature().ravel(), rtol=1e-9)
+    import json
+
+    res = invoke("export", result, "--csv", tmp_path / "p.csv", "--profile", "0,-1,0,1", "--variables", "temperature",
+                 "--json")
+    assert res.exit_code == 0, res.stderr
+    assert json.loads(res.stdout)["columns"] == ["s [m]", "x [m]", "y [m]", "temperature [K]"]
+    res = invoke("export", result, "--csv", tmp_path / "g.csv", "--json")
+    assert json.loads(res.stdout)["columns"] == header.split(",")
 
 
 def test_csv_dash_writes_to_standard_output(tmp_path, result):
