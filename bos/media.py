@@ -46,7 +46,8 @@ WAVELENGTH_RANGE_M = (300e-9, 1700e-9)
 _ATM = 101325.0
 _SUM_TOL = 1e-6
 
-# --- Ciddor 1996 / CIPM density, NIST simplified form (references.md §2 [D]) -------------
+# --- Ciddor 1996 / CIPM density, NIST simplified form (NIST Engineering Metrology Toolbox
+# documentation A-III, as coded in ref_index 1.0) ----------------------------------------
 _R_CIPM = 8.314472          # J/(mol K): the value the CIPM/NIST equations were written with
 _M_W = 0.018015             # kg/mol, water (CIPM)
 _T_AXS, _P_AXS = 288.15, 101325.0   # standard dry air: 15 degC, 101 325 Pa
@@ -55,7 +56,7 @@ _Z_AXS = 0.9995922115       # CIPM compressibility at that state (NIST constant;
 _RHO_WS = 0.00985938        # kg/m^3, pure water vapour at 20 degC, 1333 Pa (NIST constant)
 _CIPM_Z = dict(a0=1.58123e-6, a1=-2.9331e-8, a2=1.1043e-10, b0=5.707e-6, b1=-2.051e-8,
                c0=1.9898e-4, c1=-2.376e-6, d=1.83e-11, e=-0.765e-8)
-CIDDOR_RANGES = {  # NIST notes quoted in ref_index 1.0 (references.md §2 [D])
+CIDDOR_RANGES = {  # NIST Engineering Metrology Toolbox notes, as quoted in ref_index 1.0
     "temperature_k": (233.15, 373.15),      # -40 .. 100 degC
     "pressure_pa": (10e3, 140e3),
     "relative_humidity": (0.0, 1.0),
@@ -83,7 +84,8 @@ def _ch4(s2):
     return 4.2607e-4 + 6.1396687e-6 * s2
 
 
-# Other dispersion formulas, n - 1 at each gas's reference state (references.md §1 [D]):
+# Other dispersion formulas, n - 1 at each gas's reference state (refractiveindex.info
+# database entries; each original paper is named in GASES):
 def _n2(s2):  # Peck & Khanna 1966, 0 degC
     return 6.8552e-5 + 3.243157e-2 / (144.0 - s2)
 
@@ -181,14 +183,15 @@ class GasData:
     note: str = ""
 
 
-_COOLPROP = "CoolProp 8.0.0 PropsSI('D') (real gas), references.md Table 1.1 [C]"
+_COOLPROP = "CoolProp 8.0.0 PropsSI('D') (real gas) at the formula's reference state"
 
-# Propane: Lorentz-Lorenz bond-refraction additivity at the Na D line, references.md §1
-# note [M]: C-H 1.676 and C-C 1.296 cm^3/mol; K = 1.5 R_LL / M.  The wavelength dependence
+# Propane: Lorentz-Lorenz bond-refraction additivity at the Na D line (Denbigh/Vogel-type
+# bond refractions, from memory): C-H 1.676 and C-C 1.296 cm^3/mol; K = 1.5 R_LL / M.  Still to
+# be checked against Gardiner, Hidaka & Tanzawa (1981), Combust. Flame 40:213.  The wavelength dependence
 # is borrowed from methane (Loria 1909) -- our own assumption, far below the +-2 % uncertainty.
 _M_C3H8 = _formula_mass(C=3, H=8)
 _K_C3H8_589 = 1.5 * (8 * 1.676e-6 + 2 * 1.296e-6) / _M_C3H8
-_RHO_C3H8 = 2.010498  # kg/m^3 at 0 degC, 1 atm, CoolProp 8.0.0 'n-Propane' (references.md Table 1.1)
+_RHO_C3H8 = 2.010498  # kg/m^3 at 0 degC, 1 atm, CoolProp 8.0.0 'n-Propane'
 _S2_NA_D = (1 / 0.5893) ** 2
 ESTIMATE_WARNING = (
     f"c3h8 (propane): Gladstone-Dale constant is an estimate (about {_K_C3H8_589:.2e} m^3/kg "
@@ -204,15 +207,15 @@ def _gas(name, label, m, gamma, t_ref, p_ref, rho_ref, source, disp, density_sou
 
 
 # Reference densities (7 digits): CoolProp 8.0.0 PropsSI('D', 'T', T_ref, 'P', p_ref, fluid), the
-# values behind references.md Table 1.1 [C]; the tests recompute them with CoolProp.
+# computed once with CoolProp 8.0.0; the tests recompute them with CoolProp.
 GASES: dict[str, GasData] = dict([
     _gas("air", "dry air, 450 ppm CO2", float(_ciddor_air_molar_mass(450.0)), 1.4, _T_AXS, _P_AXS,
          float(_P_AXS * _ciddor_air_molar_mass(450.0) / (_Z_AXS * _R_CIPM * _T_AXS)),
          "Ciddor 1996, Appl. Opt. 35:1566 (standard air)", _air_standard,
-         density_source="CIPM equation inside Ciddor's model (rho_axs), references.md §2 [D]"),
+         density_source="CIPM equation inside Ciddor's model (rho_axs), Ciddor 1996 / NIST toolbox A-III"),
     _gas("n2", "nitrogen", _formula_mass(N=2), 1.400, 273.15, _ATM, 1.250386,
          "Peck & Khanna 1966, JOSA 56:1059", _n2),
-    # O2: the Table 1.1 density is CoolProp at 293.0 K (the database's 20 degC fit state).
+    # O2: the stored density is CoolProp at 293.0 K (the database's 20 degC fit state).
     _gas("o2", "oxygen", _formula_mass(O=2), 1.395, 293.0, _ATM, 1.331868,
          "Zhang, Lu & Wang 2008, Appl. Opt. 47:3143", _o2),
     _gas("co2", "carbon dioxide", _formula_mass(C=1, O=2), 1.291, 273.15, _ATM, 1.976813,
@@ -225,7 +228,7 @@ GASES: dict[str, GasData] = dict([
          "Peck & Hung 1977, JOSA 67:1550", _h2),
     _gas("h2o", "water vapour", _M_W, 1.329, 293.15, 1333.0, _RHO_WS,
          "Ciddor 1996 water-vapour term", _water_standard,
-         density_source="CIPM equation inside Ciddor's model (rho_ws), references.md §2 [D]"),
+         density_source="CIPM equation inside Ciddor's model (rho_ws), Ciddor 1996 / NIST toolbox A-III"),
     _gas("ch4", "methane", _formula_mass(C=1, H=4), 1.306, 273.15, _ATM, 0.7174588,
          "Loria 1909, Ann. Phys. 334:605", _ch4, fit_range_m=(529e-9, 659e-9),
          note="ch4: dispersion formula fitted over 529-659 nm only; extrapolated outside"),
@@ -234,7 +237,7 @@ GASES: dict[str, GasData] = dict([
          _sf6, fit_range_m=(600e-9, 1300e-9),
          note="sf6: dispersion formula fitted over 600-1300 nm only; extrapolated outside"),
     _gas("c3h8", "propane (estimate)", _M_C3H8, 1.130, 273.15, _ATM, _RHO_C3H8,
-         "estimate: Lorentz-Lorenz bond refractions (references.md §1 note [M]), methane dispersion shape",
+         "estimate: Lorentz-Lorenz bond refractions (Denbigh/Vogel-type values, from memory), methane dispersion shape",
          _propane, is_estimate=True, note=ESTIMATE_WARNING),
 ])
 
@@ -310,7 +313,8 @@ def gladstone_dale(gas: str, *, wavelength_m):
     References
     ----------
     Dispersion formula (source in ``gas_data(gas).dispersion_source``) divided
-    by the real-gas density at its reference state (references.md Table 1.1).
+    by the real-gas density at its reference state (CoolProp 8.0.0; for air and
+    water vapour the CIPM densities of Ciddor 1996, Appl. Opt. 35:1566).
     """
     g = gas_data(gas)
     s2 = _sigma2(_wavelength(wavelength_m))
@@ -400,7 +404,9 @@ def mixture_gladstone_dale(mass_fractions: Mapping[str, float], *, wavelength_m)
 
     References
     ----------
-    Merzkirch 1987, Flow Visualization; Settles 2001 (mixing rule, references.md §1).
+    Merzkirch (1987), Flow Visualization, 2nd ed.; Settles (2001), Schlieren
+    and Shadowgraph Techniques (mixing rule; both cited from memory, the rule
+    is checked numerically against Ciddor's humid air in the tests).
     """
     mass = _fractions("mass_fractions", mass_fractions)
     return _out(sum(y * np.asarray(gladstone_dale(g, wavelength_m=wavelength_m)) for g, y in mass.items()))
@@ -458,7 +464,7 @@ def water_vapour_mole_fraction(*, temperature_k, pressure_pa, relative_humidity)
     References
     ----------
     NIST Engineering Metrology Toolbox documentation A-II (enhancement factor
-    f = 1.00062 + 3.14e-8 p + 5.6e-7 t^2), references.md §2.
+    f = 1.00062 + 3.14e-8 p + 5.6e-7 t^2), as coded in ref_index 1.0.
     """
     t_k = _in_range("temperature_k", temperature_k, 233.15, 373.15, "233.15-373.15 K")
     p = _positive("pressure_pa", pressure_pa)
@@ -478,7 +484,7 @@ def _ciddor_inputs(temperature_k, pressure_pa, relative_humidity, co2_ppm):
 
 
 def _cipm_z(t_k, p, xw):
-    """Compressibility factor of moist air, CIPM equation (references.md §2, item 4)."""
+    """Compressibility factor of moist air, CIPM-81/91 equation (constants as in Ciddor 1996 / NIST A-III)."""
     t = t_k - 273.15
     c = _CIPM_Z
     return (1.0 - (p / t_k) * (c["a0"] + c["a1"] * t + c["a2"] * t**2 + (c["b0"] + c["b1"] * t) * xw
@@ -525,7 +531,7 @@ def air_refractive_index(*, wavelength_m, temperature_k, pressure_pa, relative_h
     References
     ----------
     Ciddor 1996, Appl. Opt. 35:1566; NIST Engineering Metrology Toolbox
-    documentation A-III (references.md §2).
+    documentation A-III (simplified form, as coded in ref_index 1.0).
     """
     s2 = _sigma2(_wavelength(wavelength_m))
     t_k, p, rh, xc = _ciddor_inputs(temperature_k, pressure_pa, relative_humidity, co2_ppm)
@@ -541,8 +547,9 @@ def air_density(*, temperature_k, pressure_pa, relative_humidity=0.0, co2_ppm=45
 
     References
     ----------
-    CIPM-81/91 (Davis 1992, Metrologia 29:67) with the Ciddor/NIST constants
-    of references.md §2, item 4.
+    CIPM-81/91 (Davis 1992, Metrologia 29:67) with the constants of Ciddor
+    (1996), Appl. Opt. 35:1566, as given in the NIST Engineering Metrology
+    Toolbox documentation A-III.
     """
     if wavelength_m is not None:
         _wavelength(wavelength_m)
@@ -578,7 +585,7 @@ def speed_of_sound(temperature_k, *, gas="air"):
     Notes
     -----
     For dry air at 1 atm this is within 0.07 % of the real-gas value over
-    -20..100 degC (references.md §7 table; checked against CoolProp in the tests).
+    -20..100 degC (compared with CoolProp 8.0.0 real-gas air; checked in the tests).
     """
     g = gas_data(gas)
     return _out(np.sqrt(g.gamma * GAS_CONSTANT * _positive("temperature_k", temperature_k) / g.molar_mass))
@@ -587,7 +594,8 @@ def speed_of_sound(temperature_k, *, gas="air"):
 def spl_to_pressure_amplitude(spl_db):
     """Peak acoustic pressure [Pa] of a sine wave of sound pressure level ``spl_db``.
 
-    p_peak = sqrt(2) * 20 uPa * 10^(L/20)  (references.md §7).
+    p_peak = sqrt(2) * 20 uPa * 10^(L/20)  (SPL re 20 uPa, the usual acoustics
+    definition; from memory).
     """
     return _out(math.sqrt(2.0) * REFERENCE_SOUND_PRESSURE_PA * 10.0 ** (_finite("spl_db", spl_db) / 20.0))
 
@@ -602,7 +610,8 @@ def isentropic_temperature_amplitude(pressure_amplitude_pa, *, temperature_k, pr
 
     References
     ----------
-    Linear acoustics, references.md §7.
+    Linear acoustics, isentropic relation (textbook result, from memory; no
+    specific source).
     """
     if not gamma > 1.0:
         raise InputError(f"gamma must exceed 1, got {gamma!r}")

@@ -4,7 +4,9 @@ A rig is a thin-lens camera focused on the background, the object (flow)
 between them.  Distances: Z_A lens -> object mid-plane, Z_D object ->
 background, Z_B = Z_A + Z_D lens -> background; f focal length, N f-number.
 
-Key relations (references.md section 3):
+Key relations (thin-lens BOS geometry of Raffel 2015 [1] and Exp. Fluids 2019,
+Eq. 1 [2]; the blur terms are our own aperture-cone derivation written in
+Raffel's symbols, the diffraction spot is the usual PIV expression [3]):
 
 - background magnification M = f / (Z_B - f) = z_i / Z_B, image distance
   z_i = f Z_B / (Z_B - f);
@@ -16,7 +18,7 @@ Key relations (references.md section 3):
 
 Planning turns a displacement noise floor into the smallest detectable
 deflection, density gradient, density difference, temperature difference
-and sound pressure (section 7 for the acoustic chain).
+and sound pressure (plane-wave linear acoustics for the acoustic chain [4]).
 
 References
 ----------
@@ -24,8 +26,12 @@ References
    Exp. Fluids 56:60 (symbols M, Z_A, Z_D, z_i, d_A, d_i, d_d).
 .. [2] Displacement equation in the form of Exp. Fluids (2019)
    doi:10.1007/s00348-019-2865-4, Eq. (1).
-.. [3] references.md sections 3 (Table 3.1, blur derivation) and 7
-   (SPL -> p' -> rho' -> n' -> eps).
+.. [3] Raffel, Willert, Scarano, Kähler, Wereley & Kompenhans (2018).
+   Particle Image Velocimetry -- A Practical Guide, 3rd ed., Springer
+   (diffraction spot d_d = 2.44 N (1 + M) lambda, dot images of 2-3 px;
+   from memory).
+.. [4] Linear acoustics: p' = c^2 rho', SPL re 20 uPa, n' = K p' / c^2
+   (textbook relations, from memory; no specific source).
 """
 
 from __future__ import annotations
@@ -56,7 +62,7 @@ __all__ = [
 ]
 
 AIRY_FACTOR = 2.44  # first dark ring of the Airy pattern, diameter = 2.44 N lambda (image side)
-DOT_PX_RANGE = (2.0, 3.0)  # dot images of 2-3 px avoid peak locking (references.md sec. 3, [M])
+DOT_PX_RANGE = (2.0, 3.0)  # dot images of 2-3 px avoid peak locking (PIV practice, Raffel et al. 2018; from memory)
 PRINT_DOT_MIN_M = 0.1e-3  # ~ one printer dot at 300 dpi (0.085 mm), rounded up (common practice)
 WAVELENGTH_RANGE_M = (300e-9, 1700e-9)
 MIN_F_NUMBER = 0.5  # thin-lens limit in air (N = 1 / (2 NA), NA <= 1)
@@ -337,7 +343,8 @@ def deflection_from_temperature_difference(dt_k: float, *, medium) -> float:
     ``medium.density_from_temperature(T0 + dT)`` (ideal gas, with the
     medium's compressibility), a deficit drho; across an in-plane length
     equal to the path length W the deflection is eps = K drho / n0 (W
-    cancels; references.md section 3: d rho/dy = n0 eps / (K W)).
+    cancels; 2-D object relation d rho/dy = n0 eps / (K W), from
+    eps = (1/n0) int dn/dy dz, Exp. Fluids 2019 Eq. 1, and n - 1 = K rho).
     """
     t0 = medium.temperature_k
     drho = float(medium.density_from_temperature(t0)) - float(medium.density_from_temperature(t0 + dt_k))
@@ -357,7 +364,7 @@ def deflection_from_sound_level(spl_db: float, *, medium, frequency_hz: float, p
     """Peak deflection of a plane sound wave travelling across the line of sight.
 
     eps = L k n' / n0 with n' = K p' / c^2 and k = 2 pi f / c
-    (references.md section 7).
+    (linear acoustics, from memory; module reference [4]).
     """
     c = medium.speed_of_sound
     n_prime = medium.gladstone_dale * float(spl_to_pressure_amplitude(spl_db)) / c**2
@@ -521,7 +528,11 @@ def plan(rig: Rig, *, medium, object_width_m: float, noise_px: float = 0.05, win
 
     References
     ----------
-    references.md sections 3 and 7; Raffel (2015) Exp. Fluids 56:60.
+    Raffel (2015) Exp. Fluids 56:60; Exp. Fluids (2019)
+    doi:10.1007/s00348-019-2865-4, Eq. (1); Raffel et al. (2018), Particle
+    Image Velocimetry -- A Practical Guide, 3rd ed. (dot size, quarter-window
+    rule) and Keane & Adrian (1990), Meas. Sci. Technol. 1:1202 (quarter-window
+    rule), both from memory; linear acoustics, from memory.
     """
     _check_plan_inputs(object_width_m, noise_px, window_px)
     if source_frequency_hz is not None and not (math.isfinite(source_frequency_hz) and source_frequency_hz > 0):

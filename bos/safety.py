@@ -1,7 +1,9 @@
 """Safety cautions for BOS and schlieren work, keyed by source and illumination.
 
-The cautions are short reminders drawn from references.md section 10; they
-are not a risk assessment.  Every list ends with a pointer to local codes,
+The cautions are short reminders drawn from the standards and guidance
+listed under References, plus common laboratory practice (the 3-30 Hz
+photosensitive band, IEC TR 62778, IEC 61010-1 / EN 50191 and the gas remarks
+are cited from memory); they are not a risk assessment.  Every list ends with a pointer to local codes,
 the equipment makers' instructions and licensed practice, which always take
 precedence.
 

@@ -168,7 +168,8 @@ def random_dots(
         Image size in pixels.
     dot_diameter_px : float
         e^-2 diameter of the dot images in pixels (2-3 px avoids peak
-        locking; references.md section 3 [M]).
+        locking; PIV practice, Raffel et al. 2018, Particle Image
+        Velocimetry -- A Practical Guide, 3rd ed.; from memory).
     density : float
         Fraction of the area covered by dot discs of the e^-2 diameter
         (counted without overlap), in (0, 5]: the number of dots per px^2 is
@@ -722,7 +723,7 @@ def displacement_from_deflection(eps_y: Any, eps_x: Any, *, rig: Any) -> tuple[n
     """Sensor displacement (px) produced by a deflection field (rad).
 
     ``d = -(M Z_D / pixel_pitch) * eps`` (docs/architecture.md, sign link;
-    magnitude references.md section 3 [D: Exp. Fluids 2019 Eq. 1]): a ray
+    magnitude from Exp. Fluids (2019) doi:10.1007/s00348-019-2865-4, Eq. 1): a ray
     deflected by eps hits the background at +Z_D eps, so background features
     appear to move the opposite way.
 
@@ -812,7 +813,10 @@ def gaussian_blob_deflection(y_m: Any, x_m: Any, *, amplitude: float, radius_m: 
 
     References
     ----------
-    references.md section 3, "Analytic BOS test object" [C].
+    Closed-form line-of-sight integral of eps_x = (1/n0) int dn/dx dz
+    (Exp. Fluids (2019) doi:10.1007/s00348-019-2865-4, Eq. 1), derived by
+    hand; check value eps_x = -1.160930e-5 rad at A = 1e-5, s = 10 mm,
+    (x, y) = (4, 2) mm, confirmed by quadrature.
     """
     s = _check_finite_positive(radius_m, "radius_m")
     nn = _n0(n0)
@@ -826,8 +830,9 @@ def planar_layer_deflection(y_m: Any, x_m: Any, *, amplitude: float, thickness_m
     """Deflection of a spanwise-uniform Gaussian layer (2-D object of width W).
 
     ``n - n0 = A exp(-(y - y_0)^2 / s^2)`` for |z| <= W/2 (uniform along x and
-    z), so ``eps_y = (W / n0) dn/dy`` (references.md section 3, 2-D object
-    relation [D]).  ``normal="x"`` turns the layer to vary along x.
+    z), so ``eps_y = (W / n0) dn/dy`` (2-D object form of eps = (1/n0) int
+    dn/dy dz, Exp. Fluids (2019) doi:10.1007/s00348-019-2865-4, Eq. 1).
+    ``normal="x"`` turns the layer to vary along x.
 
     Returns
     -------
@@ -854,7 +859,9 @@ def gaussian_column_deflection(y_m: Any, x_m: Any, *, amplitude: float, radius_m
 
     References
     ----------
-    references.md section 5, Abel pair exp(-r^2/s^2) <-> sqrt(pi) s exp(-y^2/s^2) [C].
+    Closed-form Abel pair exp(-r^2/s^2) <-> sqrt(pi) s exp(-y^2/s^2)
+    (standard integral, checked by quadrature); Abel transform as in e.g.
+    Dasch (1992), Appl. Opt. 31:1146.
     """
     s = _check_finite_positive(radius_m, "radius_m")
     nn = _n0(n0)
@@ -947,7 +954,11 @@ def abel_projection(profile: Callable[[np.ndarray], np.ndarray], y: Any, *, radi
 
     References
     ----------
-    references.md section 5 (forward transform and analytic pairs) [C].
+    Forward Abel transform as in e.g. Dasch (1992), "One-dimensional
+    tomography: a comparison of Abel, onion-peeling, and filtered
+    backprojection methods", Appl. Opt. 31:1146; checked against closed-form
+    pairs (Gaussian, uniform disk, (1 - r^2), (1 - r^2)^2), verified by
+    quadrature.
     """
     r_max = _check_finite_positive(radius, "radius")
     yy = np.asarray(y, dtype=float)
@@ -970,7 +981,7 @@ def axisymmetric_column_deflection(
 
     ``eps_x(x) = (1/n0) int dn/dx dz = (2 u / n0) int_0^sqrt(R^2-u^2) n'(r)/r dz``
     with u = x - x_axis and r = sqrt(u^2 + z^2) (the x-derivative of the
-    forward Abel projection of n - n0, references.md section 5); eps_y = 0.
+    forward Abel projection of n - n0, see References); eps_y = 0.
     The chord integral uses composite Gauss-Legendre quadrature, so the
     result is accurate to ~1e-6 relative for profiles that are smooth on
     the scale R / n_panels and have a finite slope at r = R (a uniform disk
@@ -1000,7 +1011,9 @@ def axisymmetric_column_deflection(
 
     References
     ----------
-    references.md section 5 (forward Abel transform, BOS form eps = F'/n0) [C].
+    Forward Abel transform as in e.g. Dasch (1992), Appl. Opt. 31:1146; BOS
+    form eps = F'/n0 from eps = (1/n0) int dn/dx dz (Exp. Fluids (2019)
+    doi:10.1007/s00348-019-2865-4, Eq. 1), checked numerically.
     """
     r_max = _check_finite_positive(radius_m, "radius_m")
     n_of_r, dn_dr = _profile_functions(index_profile, r_max)
@@ -1089,7 +1102,9 @@ def line_of_sight_deflection(
 
     ``eps = grad_(y,x) P / n0`` with the projection ``P(y, x) = int (n - n0) dz``
     (trapezoid rule along z, 4th-order central differences in y and x), the
-    small-angle straight-ray form of references.md section 3 [D].  The
+    small-angle straight-ray form of Exp. Fluids (2019)
+    doi:10.1007/s00348-019-2865-4, Eq. 1 (also Raffel 2015, Exp. Fluids
+    56:60).  The
     field must reach ambient at both ends of z.
 
     Parameters

@@ -34,7 +34,8 @@ def _json(args):
 
 
 def test_done_when_json_sensitivity():
-    # issue 2 "Done when" / references.md Table 3.1 row 1 [C]: 17.24 mm/rad on the sensor, 3448 px/rad
+    # issue 2 "Done when" / geometry check values (TABLE_3_1 row 1 in test_optics.py, computed from
+    # Raffel 2015, Exp. Fluids 56:60 and Exp. Fluids 2019 Eq. 1): 17.24 mm/rad on the sensor, 3448 px/rad
     out = _json(FIRST)
     assert out["sensitivity_mm_per_rad"] == pytest.approx(17.24, rel=1e-3)
     assert out["sensitivity_px_per_rad"] == pytest.approx(3448, rel=1e-3)
@@ -51,20 +52,20 @@ def test_table_output_and_example_file():
     assert res.exit_code == 0, res.output
     assert "17.24" in res.stdout and "mm/rad" in res.stdout and "caution:" in res.stdout
     out = _json([str(EXAMPLE)])
-    # the file's Z_A = 1 m, Z_D = 0.5 m, f = 50 mm, 5 um: Table 3.1 row 1 [C]
+    # the file's Z_A = 1 m, Z_D = 0.5 m, f = 50 mm, 5 um: TABLE_3_1 row 1 (test_optics.py, computed)
     assert out["sensitivity_mm_per_rad"] == pytest.approx(17.24, rel=1e-3)
     assert out["field_of_view_m"] == pytest.approx([4000 * 0.09667e-3, 6000 * 0.09667e-3], rel=1e-3)
 
 
 def test_options_override_file():
-    # --object-to-background-m 1 replaces the file's Z_D, Z_A = 1 m kept: Table 3.1 row 3 [C] 25.64 mm/rad
+    # --object-to-background-m 1 replaces the file's Z_D, Z_A = 1 m kept: TABLE_3_1 row 3 (computed) 25.64 mm/rad
     out = _json([str(EXAMPLE), "--object-to-background-m", "1.0"])
     assert out["sensitivity_mm_per_rad"] == pytest.approx(25.64, rel=1e-3)
     assert out["z_a_m"] == pytest.approx(1.0)
     # a camera-to-background option drops the file's least specific distance first (Z_D)
     out = _json([str(EXAMPLE), "--camera-to-background-m", "3.0"])
     assert out["z_b_m"] == pytest.approx(3.0) and out["z_a_m"] == pytest.approx(1.0)
-    # Table 3.1 row 4 [C] entirely from options on top of the file: f = 100 mm, 2 m + 1 m, N = 11 -> 34.48 mm/rad
+    # TABLE_3_1 row 4 (computed) entirely from options on top of the file: f = 100 mm, 2 m + 1 m, N = 11 -> 34.48 mm/rad
     out = _json([str(EXAMPLE), "--focal-length-mm", "100", "--camera-to-object-m", "2",
                  "--object-to-background-m", "1", "--f-number", "11"])
     assert out["sensitivity_mm_per_rad"] == pytest.approx(34.48, rel=1e-3)
@@ -109,7 +110,8 @@ def test_chart_written(tmp_path):
     ("flame", "high-power-led", None, ["IEC 62471", "invisible flame"]),
 ])
 def test_cautions_in_output(source, illum, freq, words):
-    # references.md sec. 10 [D]: WCAG 2.3.1, IEC 62471, IEC 60825-1, Safety Code 24 / Howard et al. 2004
+    # WCAG 2.x SC 2.3.1, IEC 62471:2006, IEC 60825-1:2014, Health Canada Safety Code 24 (1991) /
+    # Howard, Hansen & Zander (2004), J. Occup. Health Safety ANZ 21:253
     args = [*FIRST, "--source", source, "--illumination", illum]
     if freq is not None:
         args += ["--frequency-hz", str(freq)]
@@ -129,7 +131,7 @@ def test_safety_module():
     assert safety.cautions_for("none", "ambient") == [safety.DEFER]
     # flammable medium adds the fuel-gas caution even for a benign source
     assert any("H2 burns" in c for c in safety.cautions_for("plume", "led", gas="h2"))
-    # Howard et al. 2004 consensus limit [D]: 75 dB in the 20 kHz band
+    # Howard, Hansen & Zander (2004) consensus limit: 75 dB in the 20 kHz band
     assert any("75 dB (20 kHz band)" in c for c in safety.cautions_for("ultrasound", "led", frequency_hz=20e3))
     with pytest.raises(InputError, match="unknown source kind"):
         safety.cautions_for("volcano", "led")

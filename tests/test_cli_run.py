@@ -6,7 +6,8 @@ Outside sources of the checks:
   analytic deflection field: a planar Gaussian refractive-index layer
   n - n_inf = A exp(-x^2/s^2), uniform across the width W, whose deflection
   eps_x = (W/n0) dn/dx = -(2 A W x / (n0 s^2)) exp(-x^2/s^2) follows by
-  differentiation (references.md section 3, deflection definition [D]);
+  differentiation (deflection eps = (1/n0) int dn/dx dz, Exp. Fluids (2019)
+  doi:10.1007/s00348-019-2865-4, Eq. 1);
   the true temperature is T = T(n) through Gladstone-Dale and the ideal-gas
   law (bos.media, itself checked against CoolProp in test_media.py);
 * the result files are opened with xarray + h5netcdf (general-purpose

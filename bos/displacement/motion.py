@@ -98,8 +98,8 @@ def coarse_camera_shift(reference, measurement, region: np.ndarray, *, min_side:
     References
     ----------
     Padfield, D. (2012). Masked object registration in the Fourier domain.
-    IEEE Trans. Image Process. 21, 2706-2718 (from memory, not in
-    references.md; the method scikit-image implements).
+    IEEE Trans. Image Process. 21, 2706-2718 (from memory; the method
+    scikit-image implements).
     """
     from skimage.registration import phase_cross_correlation
 
