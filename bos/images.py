@@ -49,6 +49,7 @@ __all__ = [
     "RAW_SUFFIXES",
     "VIDEO_SUFFIXES",
     "read_image",
+    "read_pair",
     "iter_frames",
     "check_pair",
     "read_mask",
@@ -148,7 +149,9 @@ def _scale(arr: np.ndarray) -> tuple[np.ndarray, int]:
         return arr.astype(np.float64), 8
     if arr.dtype.kind == "u" and arr.dtype.itemsize in (1, 2):
         bits = 8 * arr.dtype.itemsize
-        return arr.astype(np.float64) / float(2**bits - 1), bits
+        out = arr.astype(np.float64)  # one conversion straight to the final type,
+        out /= float(2**bits - 1)  # then an in-place division (same values as arr / (2**bits - 1))
+        return out, bits
     if arr.dtype.kind == "f":
         return arr.astype(np.float64), 32
     raise ValueError(f"unsupported pixel type {arr.dtype} (need 8/16-bit unsigned integer or float)")
@@ -216,11 +219,34 @@ def _exif_from_mapping(ifd0: dict, exif_ifd: dict) -> dict:
     return out
 
 
+def _png_has_exif_chunk(path: Path) -> bool:
+    """True if the PNG file has an ``eXIf`` chunk (or is not a well-formed PNG: let Pillow decide).
+
+    Walks the chunk headers only (length, type; PNG specification, W3C/ISO 15948, section 5.3) and
+    skips the data, so a 38 MB image costs a few hundred small reads instead of a full decode.
+    """
+    with open(path, "rb") as fh:
+        if fh.read(8) != b"\x89PNG\r\n\x1a\n":
+            return True
+        while True:
+            head = fh.read(8)
+            if len(head) < 8:
+                return True
+            length, kind = int.from_bytes(head[:4], "big"), head[4:]
+            if kind == b"eXIf":
+                return True
+            if kind == b"IEND":
+                return False
+            fh.seek(length + 4, os.SEEK_CUR)  # data + CRC
+
+
 def _read_exif(path: Path) -> dict:
     """EXIF via Pillow; for TIFF-based files Pillow cannot open, via tifffile tags."""
     from PIL import Image
 
     try:
+        if path.suffix.lower() == ".png" and not _png_has_exif_chunk(path):
+            return {}  # Pillow's getexif() on a PNG decodes the whole image just to look for eXIf
         with Image.open(path) as im:
             exif = im.getexif()
             return _exif_from_mapping(dict(exif), dict(exif.get_ifd(0x8769)))
@@ -304,7 +330,7 @@ def _read_pillow(path: Path, frame: int | None):
         if im.mode in ("P", "PA", "CMYK", "YCbCr", "LAB", "HSV", "1"):
             im = im.convert("RGBA" if "A" in im.mode or "transparency" in im.info else "RGB")
         if im.mode in ("I;16", "I;16B", "I;16L", "I;16N"):
-            arr = np.asarray(im).astype(np.uint16)
+            arr = np.asarray(im).astype(np.uint16, copy=False)  # native order; no copy when it is already
         elif im.mode == "I":  # 16-bit greyscale PNG is opened as 32-bit 'I'
             arr = np.asarray(im)
             if arr.min() < 0 or arr.max() > 65535:
@@ -373,16 +399,10 @@ def _finish(
 ) -> ImageData:
     scaled, bits = _scale(arr)
     data = np.ascontiguousarray(_to_single(scaled, channel, linearize=linearize), dtype=np.float64)
-    bad = int(np.count_nonzero(~np.isfinite(data)))
+    # integer pixels scaled to [0, 1] are always finite: only float files need the check
+    bad = int(np.count_nonzero(~np.isfinite(data))) if arr.dtype.kind == "f" else 0
     if bad:
         raise InputError(f"image {path} frame {idx} has {bad} non-finite pixel(s) (NaN or inf)")
-    if lossy:
-        warnings.warn(
-            f"{path} is lossy-compressed; compression artefacts add displacement error "
-            "(see docs/images.md for the measured JPEG error)",
-            LossyInputWarning,
-            stacklevel=3,
-        )
     return ImageData(
         data=data,
         bit_depth=int(bit_depth or bits),
@@ -437,6 +457,75 @@ def read_image(
     ITU-R Recommendation BT.709-6 (2015), luminance weights.
     IEC 61966-2-1:1999, sRGB transfer function.
     """
+    image = _read_quietly(path, frame=frame, channel=channel, linearize=linearize)
+    _warn_if_lossy(image)
+    return image
+
+
+def _warn_if_lossy(image: ImageData) -> None:
+    if image.lossy:
+        warnings.warn(
+            f"{image.source[0]} is lossy-compressed; compression artefacts add displacement error "
+            "(see docs/images.md for the measured JPEG error)",
+            LossyInputWarning,
+            stacklevel=3,
+        )
+
+
+def read_pair(
+    reference: str | os.PathLike,
+    measurement: str | os.PathLike,
+    *,
+    reference_frame: int | None = None,
+    measurement_frame: int | None = None,
+    channel: str = "luminance",
+    linearize: bool = False,
+) -> tuple[ImageData, ImageData]:
+    """Read the reference and the measurement image at once, in two threads.
+
+    Same result, errors and warnings as two calls of :func:`read_image`
+    (reference first): the decoders (zlib, libpng/libtiff through Pillow and
+    tifffile) and numpy's type conversion release the interpreter lock, so
+    the two files are decoded side by side on a multi-core machine.
+
+    Parameters
+    ----------
+    reference, measurement : path-like
+        The two files (may be the same multi-frame file).
+    reference_frame, measurement_frame : int, optional
+        Frame/page of each file (0-based); default 0.
+    channel, linearize
+        As for :func:`read_image`, applied to both.
+
+    Returns
+    -------
+    (ImageData, ImageData)
+        Reference, measurement.
+
+    Raises
+    ------
+    DataFileError, InputError
+        As :func:`read_image`; an error of the reference is raised before one
+        of the measurement.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    options = {"channel": channel, "linearize": linearize}
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="bos-read") as pool:
+        later = pool.submit(_read_quietly, measurement, frame=measurement_frame, **options)
+        try:
+            ref = _read_quietly(reference, frame=reference_frame, **options)
+        except BaseException:
+            later.cancel()
+            raise
+        meas = later.result()
+    _warn_if_lossy(ref)
+    _warn_if_lossy(meas)
+    return ref, meas
+
+
+def _read_quietly(path: str | os.PathLike, *, frame: int | None, channel: str, linearize: bool) -> ImageData:
+    """:func:`read_image` without the lossy-input warning (the caller issues it)."""
     if channel not in ("luminance", *_CHANNELS):
         raise InputError(f"unknown channel {channel!r}; use 'luminance', 'red', 'green' or 'blue'")
     p = _check_exists(path)
@@ -502,10 +591,10 @@ def iter_frames(
             return
         except Exception as exc:  # noqa: BLE001
             raise _cannot_read(p, f"frame {i}: {_one_line(exc)}") from None
-        with warnings.catch_warnings():
-            if i:
-                warnings.simplefilter("ignore", LossyInputWarning)
-            yield _finish(arr, p, idx=i, n=n, lossy=lossy, channel=channel, linearize=linearize, exif={})
+        image = _finish(arr, p, idx=i, n=n, lossy=lossy, channel=channel, linearize=linearize, exif={})
+        if not i:
+            _warn_if_lossy(image)
+        yield image
         i += 1
 
 

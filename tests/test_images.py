@@ -29,6 +29,7 @@ from bos.images import (
     polygon_mask,
     read_image,
     read_mask,
+    read_pair,
 )
 
 REC709 = (0.2126, 0.7152, 0.0722)  # ITU-R BT.709-6 luminance coefficients (from memory)
@@ -237,6 +238,45 @@ def test_non_finite_tiff_refused(tmp_path):
     good = ImageData(data=np.ones((8, 8)), bit_depth=32, lossy=False, source=("y", 0))
     with pytest.raises(InputError, match="measurement image x has 2 non-finite"):
         check_pair(good, bad)
+
+
+def test_read_pair_matches_two_reads_with_warnings_and_errors_in_order(tmp_path):
+    rng = _rng()
+    a16 = (rng.random((40, 50)) * 65535).astype(np.uint16)
+    b8 = (rng.random((40, 50)) * 255).astype(np.uint8)
+    Image.fromarray(a16).save(tmp_path / "ref.png")
+    Image.fromarray(b8).save(tmp_path / "meas.jpg", quality=100)
+    with pytest.warns(LossyInputWarning, match="meas.jpg"):
+        ref, meas = read_pair(tmp_path / "ref.png", tmp_path / "meas.jpg")
+    np.testing.assert_array_equal(ref.data, a16 / 65535.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", LossyInputWarning)
+        single = read_image(tmp_path / "meas.jpg")
+    np.testing.assert_array_equal(meas.data, single.data)
+    assert (ref.bit_depth, meas.bit_depth, ref.lossy, meas.lossy) == (16, 8, False, True)
+    # frames of one multi-page file, chosen separately
+    stack = (rng.random((3, 10, 14)) * 65535).astype(np.uint16)
+    tifffile.imwrite(tmp_path / "stack.tif", stack, photometric="minisblack")
+    r, m = read_pair(tmp_path / "stack.tif", tmp_path / "stack.tif", reference_frame=0, measurement_frame=2)
+    np.testing.assert_array_equal(r.data, stack[0] / 65535.0)
+    np.testing.assert_array_equal(m.data, stack[2] / 65535.0)
+    # both files bad: the reference's error comes first, as with two sequential reads
+    with pytest.raises(DataFileError, match="not found: .*nothing-ref.png") as e:
+        read_pair(tmp_path / "nothing-ref.png", tmp_path / "nothing-meas.png")
+    _one_line(e)
+    with pytest.raises(InputError, match="frame 5 out of range"):
+        read_pair(tmp_path / "ref.png", tmp_path / "stack.tif", measurement_frame=5)
+
+
+def test_png_exif_chunk_read_and_absent(tmp_path):
+    a = (_rng().random((16, 16)) * 255).astype(np.uint8)
+    exif = Image.Exif()
+    exif[272] = "PngCam"  # Model
+    exif.get_ifd(0x8769)[37386] = TiffImagePlugin.IFDRational(50, 1)  # FocalLength, mm
+    Image.fromarray(a).save(tmp_path / "e.png", exif=exif)
+    Image.fromarray(a).save(tmp_path / "n.png")
+    assert read_image(tmp_path / "e.png").exif == {"focal_length_m": pytest.approx(0.050), "camera_model": "PngCam"}
+    assert read_image(tmp_path / "n.png").exif == {}
 
 
 def test_pair_size_mismatch_and_bit_depth_mix(tmp_path):
