@@ -143,12 +143,6 @@ def result_variables(result: RunResult, *, gas: str = "air") -> tuple[dict[str, 
     return coords, v
 
 
-def _default_profile(result: RunResult) -> list[list[float]]:
-    """Horizontal line through the middle of the field [m] (run coordinates, y down)."""
-    y_mid = float(result.y_m[len(result.y_m) // 2])
-    return [[float(result.x_m[0]), y_mid], [float(result.x_m[-1]), y_mid]]
-
-
 def as_result_data(result: RunResult, *, gas: str = "air"):
     """The run as an in-memory :class:`bos.store.ResultData` (same content and orientation as the file)."""
     from .store import ResultData, Variable
@@ -275,7 +269,7 @@ def file_attributes(result: RunResult, exp: Experiment, *, line_file_m) -> dict[
     return attrs
 
 
-def save_run(result: RunResult, exp: Experiment) -> list[Path]:
+def save_run(result: RunResult, exp: Experiment, *, report: bool = False, virtual_views: bool = False) -> list[Path]:
     """Write the result file (netCDF-4, ``<name>.nc``), the figures and the profile CSV of a run.
 
     The files of one run form a transaction (:class:`bos._io.OutputSet`):
@@ -288,6 +282,17 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     ``output.figures = false``.  The profile line of the experiment (run
     coordinates, y down) is stored in the file's coordinates (y up) as the
     attribute ``profile_line_m`` = [x0, y0, x1, y1].
+
+    Parameters
+    ----------
+    result : RunResult
+    exp : Experiment
+    report : bool
+        Also write the one-page HTML report ``<name>-report.html``
+        (:func:`bos.report.write_report`) into the same set.
+    virtual_views : bool
+        Also write virtual knife-edge pictures of the deflection field
+        (:func:`bos.schlieren.write_virtual_views`) into the same set.
 
     Returns
     -------
@@ -305,7 +310,12 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
     prepare_output_dir(paths["result"].parent)
     gas = exp.medium.gas if not exp.medium.composition else "mixture"
     coords, variables = result_variables(result, gas=gas)
-    line = exp.output.profile or _default_profile(result)
+    data = as_result_data(result, gas=gas)
+    line = exp.output.profile
+    if line is None:
+        from .plots import default_profile_line
+
+        line = default_profile_line(data)
     line_file = [[float(x), float(file_y(y))] for x, y in line]
     attrs = file_attributes(result, exp, line_file_m=line_file)
     from ._io import OutputSet
@@ -315,11 +325,21 @@ def save_run(result: RunResult, exp: Experiment) -> list[Path]:
         attrs["run_id"] = out.run_id
         store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs,
                            history=f"bos run from {exp.source_file or 'command-line options'}")
-        samples = sample_profile(as_result_data(result, gas=gas), line_file)
+        samples = sample_profile(data, line_file)
         write_profile_csv(out.path(paths["profile_csv"]), samples)
         if exp.output.figures:
             staged = {k: (out.path(v) if k.startswith("fig_") else v) for k, v in paths.items()}
             _figures(result, staged, line, samples)
+        if virtual_views:
+            from .schlieren import write_virtual_views
+
+            for p in write_virtual_views(data, out.staging, exp.output.name):
+                out.path(paths["result"].parent / Path(p).name)
+        if report:
+            from .report import write_report
+
+            write_report(result, out.path(paths["result"].parent / f"{exp.output.name}-report.html"),
+                         name=exp.output.name, line=line)
         return out.commit()
 
 

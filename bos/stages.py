@@ -431,7 +431,9 @@ def inputs_from_arrays(reference: np.ndarray, measurement: np.ndarray, *, mask: 
     InputError
         The images are not 2-D, differ in shape, or the mask has the wrong shape.
     """
-    ref = np.asarray(reference)
+    # a PreparedReference (bos.displacement.prepare_reference: per-reference work done once,
+    # reused over a batch) is array-like and passed through unchanged
+    ref = reference if hasattr(reference, "image") and hasattr(reference, "shape") else np.asarray(reference)
     meas = np.asarray(measurement)
     if ref.ndim != 2 or meas.ndim != 2:
         raise InputError(f"images must be 2-D grey images, got shapes {ref.shape} and {meas.shape}")
@@ -470,7 +472,7 @@ def process_inputs(inputs: Inputs, exp: Experiment, *, progress: ProgressFn | No
     rig = exp.rig()
     medium = exp.medium_model()
     early: list[str] = []
-    if np.array_equal(inputs.reference, inputs.measurement):
+    if np.array_equal(np.asarray(inputs.reference), inputs.measurement):
         early.append("reference and measurement are pixel-identical (the same picture twice?): no displacement "
                      "is possible, every field is ambient by construction")
     _tick(progress, "displacement", 0.0)

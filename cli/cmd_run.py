@@ -94,7 +94,22 @@ def make_progress():
     return progress, callback
 
 
-def run_and_save(exp, *, quiet: bool = False):
+def _preload_matplotlib() -> None:
+    """Import matplotlib in a background thread while the estimator runs (its import costs
+    ~1-3 s and is needed only for the figures at the end)."""
+    import threading
+
+    def work():
+        try:
+            import matplotlib.backends.backend_agg  # noqa: F401
+            import matplotlib.figure  # noqa: F401
+        except Exception:  # noqa: BLE001 - the figure stage reports real problems itself
+            pass
+
+    threading.Thread(target=work, name="bos-preload-matplotlib", daemon=True).start()
+
+
+def run_and_save(exp, *, quiet: bool = False, report: bool = False, virtual_views: bool = False):
     """Run the pipeline with a progress bar (unless ``quiet``) and save; return (result, files)."""
     from bos import pipeline
 
@@ -103,6 +118,8 @@ def run_and_save(exp, *, quiet: bool = False):
     pipeline.prepare_output_dir(out_dir)  # fail fast on an unwritable output before the long work
     # progress bars only on a terminal: piped stderr keeps exactly the one-line error on failure
     quiet = quiet or not sys.stderr.isatty()
+    if exp.output.figures or report or virtual_views:
+        _preload_matplotlib()
     try:
         if quiet:
             result = pipeline.run_experiment(exp)
@@ -110,7 +127,7 @@ def run_and_save(exp, *, quiet: bool = False):
             progress, callback = make_progress()
             with progress:
                 result = pipeline.run_experiment(exp, progress=callback)
-        files = pipeline.save_run(result, exp)
+        files = pipeline.save_run(result, exp, report=report, virtual_views=virtual_views)
     except BaseException:
         if created:  # leave no empty output directory behind after a failed run
             with contextlib.suppress(OSError):
@@ -190,6 +207,11 @@ def register(app: typer.Typer) -> None:
         source: Optional[choices("source.kind")] = key_option("source.kind"),
         illumination: Optional[choices("source.illumination")] = key_option("source.illumination"),
         frequency_hz: Optional[float] = key_option("source.frequency_hz"),
+        report: bool = typer.Option(False, "--report", help="also write the one-page HTML report <name>-report.html"),
+        virtual_knife_edge: bool = typer.Option(
+            False, "--virtual-knife-edge",
+            help="also write virtual knife-edge pictures of the deflection (vertical and horizontal knife, "
+                 "graded circular cutoff, colour by direction)"),
         as_json: bool = typer.Option(False, "--json", help="print the summary as JSON"),
     ) -> None:
         """Process one image pair: displacement, deflection, density, temperature -> result file + figures."""
@@ -199,7 +221,7 @@ def register(app: typer.Typer) -> None:
         overrides = key_overrides(run, locals())
         exp = load_experiment(experiment, overrides=overrides)
         check_run_settings(exp)  # every missing setting at once, named by option and key
-        result, files = run_and_save(exp, quiet=as_json)
+        result, files = run_and_save(exp, quiet=as_json, report=report, virtual_views=virtual_knife_edge)
         summary = dict(result.summary, cautions=result.attrs.get("cautions", []))
         if as_json:
             emit_json({"summary": jsonable(summary), "files": [str(f) for f in files]})

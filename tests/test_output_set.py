@@ -168,3 +168,16 @@ def test_inspect_warns_about_a_file_from_another_run(tmp_path):
     info = json.loads(res.stdout)
     assert any("profile.csv" in w for w in info["file_set_warnings"])
     np.testing.assert_equal(info["run_id"], json.loads((out / f"{name}-run.json").read_text())["run_id"])
+
+
+def test_report_and_virtual_views_join_the_same_output_set(tmp_path):
+    exp, result, _ = _crafted(tmp_path)
+    files = pipeline.save_run(result, exp, report=True, virtual_views=True)
+    out = files[0].parent
+    name = exp.output.name
+    manifest = json.loads((out / f"{name}-run.json").read_text())
+    assert f"{name}-report.html" in manifest["files"]
+    assert {f"{name}-knife-90deg.png", f"{name}-knife-0deg.png", f"{name}-circular.png",
+            f"{name}-colour.png"} <= set(manifest["files"])
+    assert check_output_set(files[0], manifest["run_id"]) == []
+    assert (out / f"{name}-report.html").read_text().lstrip().lower().startswith("<!doctype html")
