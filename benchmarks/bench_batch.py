@@ -20,8 +20,8 @@ printed with the figures; repeat runs to judge the noise.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
-import shutil
 import sys
 import tempfile
 import time
@@ -94,25 +94,36 @@ def render_frames(n: int) -> Path:
     return d
 
 
-def run(label: str, d: Path, work: Path, n: int, **kwargs) -> dict:
-    from bos.batch import run_batch
+def run(label: str, d: Path, work: Path, n: int, *, threads: int | None = None, **kwargs) -> dict:
+    """One batch of n frames; frame rate overall and in the steady state (first frames excluded)."""
+    from bos.batch import apply_thread_budget, run_batch
     from bos.config import load_experiment
     from bos.frames import parse_range, resolve_frames
 
-    out = work / label.replace(" ", "_")
-    exp_file = work / f"{label.replace(' ', '_')}.toml"
+    out = work / label.replace(" ", "_").replace(",", "")
+    exp_file = work / f"{out.name}.toml"
     exp_file.write_text(EXPERIMENT.format(ref=d / "ref.png", out=out))
     frames = resolve_frames(d / "frames", frame_range=parse_range(f"0:{n}"))
+    if threads is not None:
+        apply_thread_budget(threads)  # in-process runs: this process's thread budget
+    stamps: list[float] = []
+
+    def progress(finished, total, outcome):
+        if outcome is not None:
+            stamps.append(time.perf_counter())
+
     t0 = time.perf_counter()
-    rep = run_batch(load_experiment(exp_file), frames, restart=True, **kwargs)
+    rep = run_batch(load_experiment(exp_file), frames, restart=True, progress=progress, **kwargs)
     wall = time.perf_counter() - t0
+    w = max(1, len(rep.peak_rss_bytes))
+    # steady state: from the w-th finished frame on (pool start-up and the first frames excluded)
+    steady = (len(stamps) - w) / (stamps[-1] - stamps[w - 1]) if len(stamps) > w else float("nan")
     rss = max(rep.peak_rss_bytes.values()) if rep.peak_rss_bytes else 0
-    row = {"label": label, "fps": rep.computed / wall, "compute_fps": rep.frames_per_second, "wall": wall,
-           "failed": len(rep.failed), "rss_gb": rss / 1e9, "workers": len(rep.peak_rss_bytes),
-           "series": rep.series_file}
-    print(f"{label:28s} {row['fps']:6.2f} frames/s (wall {wall:6.1f} s incl. start-up and join; "
-          f"{row['compute_fps']:.2f} frames/s while computing), failed {row['failed']}, "
-          f"peak RSS per worker {row['rss_gb']:.2f} GB over {row['workers']} process(es)", flush=True)
+    row = {"label": label, "fps": rep.computed / wall, "steady_fps": steady, "wall": wall,
+           "failed": len(rep.failed), "rss_gb": rss / 1e9, "workers": len(rep.peak_rss_bytes)}
+    print(f"  {label:26s} {row['fps']:6.3f} frames/s overall (wall {wall:6.1f} s incl. start-up and join), "
+          f"{steady:6.3f} frames/s steady; failed {row['failed']}; peak RSS per worker {row['rss_gb']:.2f} GB "
+          f"({row['workers']} process(es)); load {os.getloadavg()[0]:.1f}", flush=True)
     return row
 
 
@@ -143,42 +154,49 @@ def displacement_stage(d: Path, pairs: int) -> None:
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--frames", type=int, default=300)
-    ap.add_argument("--skip", nargs="*", default=[], choices=["serial", "two", "dask", "stage"])
+    ap.add_argument("--frames", type=int, default=300, help="frames per batch")
+    ap.add_argument("--rounds", type=int, default=1,
+                    help="repeat all executors this many times, interleaved (ratios from each round)")
+    ap.add_argument("--skip", nargs="*", default=[], choices=["serial", "one-thread", "two", "dask", "stage"])
     ap.add_argument("--stage-pairs", type=int, default=10)
     ap.add_argument("--render-only", action="store_true", help="only render and cache the frames")
     args = ap.parse_args()
     d = render_frames(args.frames)
     if args.render_only:
         return 0
-    print(f"{args.frames} frames of {SHAPE[0]}x{SHAPE[1]} px, {os.cpu_count()} cores, "
+    cores = os.cpu_count() or 1
+    print(f"{args.frames} frames of {SHAPE[0]}x{SHAPE[1]} px per batch, {args.rounds} round(s), {cores} cores, "
           f"load average {os.getloadavg()[0]:.1f} at start", flush=True)
-    rows = {}
-    with tempfile.TemporaryDirectory() as tmp:
-        work = Path(tmp)
-        if "serial" not in args.skip:
-            rows["1"] = run("1 worker (in process)", d, work, args.frames, workers=1)
-        if "two" not in args.skip:
-            rows["2"] = run("2 local workers", d, work, args.frames, workers=2)
-        if "dask" not in args.skip:
+    configs = [("serial", "1 worker (in process)", dict(workers=1, threads=cores)),
+               ("one-thread", "1 worker, 1 thread", dict(workers=1, threads=1)),
+               ("two", "2 local workers", dict(workers=2)),
+               ("dask", "Dask LocalCluster 2x1", dict())]
+    configs = [c for c in configs if c[0] not in args.skip]
+    ratios: dict[str, list[float]] = {}
+    with contextlib.ExitStack() as stack:
+        scheduler = None
+        if any(c[0] == "dask" for c in configs):
             from distributed import LocalCluster
 
-            with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cl:
-                rows["dask"] = run("Dask LocalCluster 2x1", d, work, args.frames, scheduler=cl.scheduler_address)
-        if "serial" not in args.skip:
-            from bos.batch import apply_thread_budget
-
-            apply_thread_budget(1)  # one process limited to one thread: the pure process-scaling reference
-            rows["1t"] = run("1 worker, 1 thread", d, work, args.frames, workers=1)
-        if "1" in rows and "2" in rows:
-            print(f"speedup 1 -> 2 local workers: x{rows['2']['fps'] / rows['1']['fps']:.2f} wall "
-                  f"(x{rows['2']['compute_fps'] / rows['1']['compute_fps']:.2f} while computing; target >= 1.7)")
-        if "1t" in rows and "2" in rows:
-            print(f"speedup 1 worker with 1 thread -> 2 local workers (1 thread each): "
-                  f"x{rows['2']['compute_fps'] / rows['1t']['compute_fps']:.2f} while computing")
-        if "2" in rows and "dask" in rows:
-            print(f"Dask / local (2 workers): x{rows['dask']['fps'] / rows['2']['fps']:.2f}")
-        shutil.rmtree(work, ignore_errors=True)
+            cluster = stack.enter_context(LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                                       dashboard_address=None))
+            scheduler = cluster.scheduler_address
+        for r in range(args.rounds):
+            print(f"round {r + 1}", flush=True)
+            rows = {}
+            with tempfile.TemporaryDirectory() as tmp:
+                for key, label, kw in configs:
+                    if key == "dask":
+                        kw = dict(scheduler=scheduler)
+                    rows[key] = run(label, d, Path(tmp), args.frames, **kw)
+            for a, b, name in (("serial", "two", "1 -> 2 local workers"),
+                               ("one-thread", "two", "1 worker 1 thread -> 2 workers 1 thread each"),
+                               ("two", "dask", "local 2 -> Dask 2x1")):
+                if a in rows and b in rows:
+                    ratios.setdefault(name, []).append(rows[b]["steady_fps"] / rows[a]["steady_fps"])
+    for name, vals in ratios.items():
+        print(f"speedup {name}: x{np.median(vals):.2f} median of {len(vals)} round(s) "
+              f"({', '.join(f'x{v:.2f}' for v in vals)}), steady frame rates; target 1 -> 2 >= 1.7")
     if "stage" not in args.skip:
         displacement_stage(d, args.stage_pairs)
     print(f"load average at end {os.getloadavg()[0]:.1f} (2-core machine shared with other work: noisy)")

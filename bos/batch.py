@@ -193,7 +193,7 @@ def apply_thread_budget(threads: int | None) -> None:
     if threads is None or _THREADS["n"] == threads:
         return
     n = max(1, int(threads))
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMEXPR_NUM_THREADS"):
+    for var in _THREAD_VARS:
         os.environ[var] = str(n)
     try:
         from threadpoolctl import threadpool_limits
@@ -355,11 +355,35 @@ def _local(tasks: list[FrameTask], workers: int) -> Iterator[FrameOutcome]:
     frame in flight during three such crashes is recorded as failed.
     """
     import multiprocessing
-    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-    from concurrent.futures.process import BrokenProcessPool
 
     threads = max(1, default_workers() // workers)
     ctx = multiprocessing.get_context("spawn")
+    with _thread_environment(threads):  # children start with their budget (BLAS pools sized at load)
+        yield from _local_pool(tasks, workers, threads, ctx)
+
+
+_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMEXPR_NUM_THREADS")
+
+
+@contextlib.contextmanager
+def _thread_environment(threads: int) -> Iterator[None]:
+    """Thread-count variables for the worker processes started inside (restored afterwards)."""
+    saved = {k: os.environ.get(k) for k in _THREAD_VARS}
+    os.environ.update({k: str(threads) for k in _THREAD_VARS})
+    try:
+        yield
+    finally:
+        for k, v in saved.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
+def _local_pool(tasks: list[FrameTask], workers: int, threads: int, ctx) -> Iterator[FrameOutcome]:
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+    from concurrent.futures.process import BrokenProcessPool
+
     queue = list(reversed(tasks))
     crashes: dict[int, int] = {}
     limit = 2 * workers
