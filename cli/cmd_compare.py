@@ -28,8 +28,8 @@ def register(app: typer.Typer) -> None:
     @app.command("compare")
     @handle_errors
     def compare(
-        bos_result: Path = typer.Argument(..., help="BOS result file (.h5) from bos run"),
-        knife_result: Path = typer.Argument(..., help="knife-edge result file (.h5) from bos knife-edge"),
+        bos_result: Path = typer.Argument(..., help="BOS result file (.nc) from bos run"),
+        knife_result: Path = typer.Argument(..., help="knife-edge result file (.nc) from bos knife-edge"),
         control_points: Optional[Path] = typer.Option(
             None, "--control-points",
             help='JSON list of {"bos_px": [row, col], "knife_px": [row, col]} (>= 3); default: automatic registration'),

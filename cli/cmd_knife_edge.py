@@ -151,7 +151,7 @@ def register(app: typer.Typer) -> None:
                                             "in degrees (counter-clockwise from horizontal on the screen)"),
         object_pixel_mm: Optional[float] = typer.Option(None, "--object-pixel-mm",
                                                         help="size of one picture pixel in the object plane (mm)"),
-        out: Optional[Path] = typer.Option(None, "--out", help="output result file (.h5)"),
+        out: Optional[Path] = typer.Option(None, "--out", help="output result file (netCDF-4; .nc added when the name has no suffix)"),
         lens_center_px: Optional[str] = typer.Option(None, "--lens-center-px", help="calibration lens centre ROW,COL (px)"),
         lens_radius_px: Optional[float] = typer.Option(None, "--lens-radius-px", help="calibration lens radius (px)"),
         lens_focal_length_m: Optional[float] = typer.Option(
@@ -185,7 +185,9 @@ def register(app: typer.Typer) -> None:
         if object_pixel_mm is None:
             raise InputError("object pixel size missing: give --object-pixel-mm")
         if out is None:
-            raise InputError("output file missing: give --out FILE.h5")
+            raise InputError("output file missing: give --out FILE.nc")
+        if not out.suffix:
+            out = out.with_suffix(".nc")
         cautions = knife_edge_cautions(illumination)
         lens, optics = _lens_or_optics(lens_center_px, lens_radius_px, lens_focal_length_m, lens_focal_length_sigma_m,
                                        schlieren_focal_length_m, source_image_height_mm, cutoff)
@@ -213,7 +215,8 @@ def register(app: typer.Typer) -> None:
         from bos.output import prepare_output_dir
 
         prepare_output_dir(out.parent if str(out.parent) else Path("."))
-        files = [store.write_result(out, coords=coords, variables=variables, attrs=jsonable(attrs))]
+        files = [store.write_result(out, coords=coords, variables=variables, attrs=jsonable(attrs),
+                                    history=f"bos knife-edge {image} --no-flow {no_flow}")]
         if plot is not None:
             files.append(_calibration_plot(res, plot))
         summary = res.summary()
@@ -227,7 +230,7 @@ def register(app: typer.Typer) -> None:
     @app.command("virtual-knife-edge")
     @handle_errors
     def virtual_knife_edge(
-        result: Path = typer.Argument(..., help="BOS result file (.h5) with deflection_y, deflection_x"),
+        result: Path = typer.Argument(..., help="BOS result file (.nc) with deflection_y, deflection_x"),
         out: Optional[Path] = typer.Option(None, "--out", help="output directory (default: beside the result)"),
         name: Optional[str] = typer.Option(None, "--name", help="base name of the PNGs (default: the result's name)"),
         knife: list[str] = typer.Option(["vertical", "horizontal"], "--knife",

@@ -123,19 +123,26 @@ def test_result_files_are_netcdf_with_nc_suffix(results):
         assert path.read_bytes()[:8] == b"\x89HDF\r\n\x1a\n"  # netCDF-4 = HDF5 container
 
 
-def test_cfchecks_reports_no_error_and_no_warning(results, tmp_path):
+def assert_cfchecks_clean(paths, tmp_path) -> None:
+    """Run cfchecks (CF 1.8) on each file: no FATAL, no ERROR, no WARN (skips without cfchecker/UDUNITS-2).
+
+    Also used by the tests of the other writers (knife-edge, compare, periodic, batch)."""
     try:
         from cfchecker.cfchecks import CFChecker
     except (ImportError, OSError) as exc:  # cfunits loads the UDUNITS-2 C library when imported
         pytest.skip(f"cfchecker or the UDUNITS-2 library is not installed: {exc}")
     tables = _checker_tables(tmp_path)
-    for name, path in results.items():
+    for path in paths:
         checker = CFChecker(silent=True, **tables)
         checker.checker(str(path))
         counts = checker.get_total_counts()
         problems = [m for m in checker.all_messages if m.split(":")[0] in ("FATAL", "ERROR", "WARN")]
-        assert counts["FATAL"] == 0 and counts["ERROR"] == 0 and counts["WARN"] == 0, (name, problems)
+        assert counts["FATAL"] == 0 and counts["ERROR"] == 0 and counts["WARN"] == 0, (str(path), problems)
         assert any("Checking against CF Version CF-1.8" in m for m in checker.all_messages)
+
+
+def test_cfchecks_reports_no_error_and_no_warning(results, tmp_path):
+    assert_cfchecks_clean(results.values(), tmp_path)
 
 
 def test_compliance_checker_finds_only_its_earth_grid_heuristic(results, tmp_path):

@@ -66,7 +66,7 @@ def files(tmp_path_factory):
         "deflection_y": var(ey), "deflection_x": var(ex), "masked": var(flags, "1"), "invalid": var(flags, "1")})
     # the same result in a file whose y (and deflection_y) points up
     coords_up = dict(coords, y=(-(BOS_ROWS - 80) * BOS_PIX_M, {"units": "m", "long_name": "y (up)"}))
-    store.write_result(d / "bos_up.h5", coords=coords_up, variables={
+    store.write_result(d / "bos_up.nc", coords=coords_up, variables={
         "deflection_y": var(-ey), "deflection_x": var(ex), "masked": var(flags, "1"), "invalid": var(flags, "1")})
     # --- knife-edge pictures of the same field (vertical knife, normal +x)
     kr, kc = np.mgrid[0:KNIFE_SHAPE[0], 0:KNIFE_SHAPE[1]].astype(float)
@@ -83,7 +83,7 @@ def files(tmp_path_factory):
     _png(d / "noflow.png", illum + rng.normal(0, 0.0015, KNIFE_SHAPE))
     r = invoke("knife-edge", d / "flow.png", "--no-flow", d / "noflow.png", "--knife", "vertical",
                "--object-pixel-mm", KNIFE_PIX_M * 1e3, "--lens-center-px", "185,225", "--lens-radius-px", LENS_RADIUS,
-               "--lens-focal-length-m", LENS_F, "--out", d / "knife.h5", "--json")
+               "--lens-focal-length-m", LENS_F, "--out", d / "knife.nc", "--json")
     assert r.exit_code == 0, r.output
     # --- control points (0.1 px of clicking noise)
     src = np.array([[20, 20], [20, 170], [150, 30], [140, 160], [80, 95]], float)
@@ -108,34 +108,45 @@ def _check(stats, overlap):
 def test_compare_with_control_points(files, tmp_path):
     d = files["dir"]
     out = tmp_path / "cmp"
-    r = invoke("compare", d / "bos.h5", d / "knife.h5", "--control-points", d / "cp.json", "--out", out,
+    r = invoke("compare", d / "bos.h5", d / "knife.nc", "--control-points", d / "cp.json", "--out", out,
                "--line", "110,10,110,250", "--json")
     assert r.exit_code == 0, r.output
     _check(json.loads(r.stdout), files["overlap"])
     names = sorted(p.name for p in out.iterdir())
     assert names == ["compare-difference.png", "compare-panels.png", "compare-profile-1.csv", "compare-profile-1.png",
-                     "compare.h5", "compare.json"]
+                     "compare.json", "compare.nc"]
     details = json.loads((out / "compare.json").read_text())
     assert details["transform"]["scale"] == pytest.approx(1.3, rel=0.005)
     assert details["transform"]["rotation_deg"] == pytest.approx(8.0, abs=0.2)
+    header = (out / "compare-profile-1.csv").read_text().splitlines()[0]
+    assert header == ("s [m],row_px [px],col_px [px],bos_deflection_normal [rad],knife_deflection_normal [rad],"
+                      "difference [rad]")
     prof = np.genfromtxt(out / "compare-profile-1.csv", delimiter=",", names=True)
-    ok = np.isfinite(prof["difference"])
+    ok = np.isfinite(prof["difference_rad"])
     assert ok.sum() > 100
-    assert np.nanmax(np.abs(prof["bos_deflection_normal"])) > 0.25 * PEAK
-    data = store.read_result(out / "compare.h5")
+    assert np.nanmax(np.abs(prof["bos_deflection_normal_rad"])) > 0.25 * PEAK
+    data = store.read_result(out / "compare.nc")
     assert data.variables["difference"].attrs["units"] == "rad"
+    # the file's y points up (against the knife-picture rows), like the BOS and knife-edge result files
+    y, rows = data.coords["y"].data, data.coords["row_px"].data
+    assert np.all(np.diff(y) < 0) and np.all(np.diff(rows) > 0)
+    assert data.attrs["comparison"]["registration"] == "control points"
+    assert "Umeyama" in data.attrs["references"] and "bos compare" in data.attrs["history"]
+    from test_cf_compliance import assert_cfchecks_clean
+
+    assert_cfchecks_clean([out / "compare.nc", d / "knife.nc"], tmp_path)
 
 
 def test_compare_reads_y_up_files(files):
     d = files["dir"]
-    r = invoke("compare", d / "bos_up.h5", d / "knife.h5", "--control-points", d / "cp.json", "--json")
+    r = invoke("compare", d / "bos_up.nc", d / "knife.nc", "--control-points", d / "cp.json", "--json")
     assert r.exit_code == 0, r.output
     _check(json.loads(r.stdout), files["overlap"])
 
 
 def test_compare_registers_automatically(files):
     d = files["dir"]
-    r = invoke("compare", d / "bos.h5", d / "knife.h5", "--json")
+    r = invoke("compare", d / "bos.h5", d / "knife.nc", "--json")
     assert r.exit_code == 0, r.output
     _check(json.loads(r.stdout), files["overlap"])
 
@@ -143,11 +154,11 @@ def test_compare_registers_automatically(files):
 def test_compare_bad_input(files, tmp_path):
     d = files["dir"]
     for args, words in [
-        ((d / "bos.h5", d / "knife.h5", "--control-points", d / "cp2.json"), "at least 3 control points"),
-        ((d / "knife.h5", d / "knife.h5"), "deflection_y"),
+        ((d / "bos.h5", d / "knife.nc", "--control-points", d / "cp2.json"), "at least 3 control points"),
+        ((d / "knife.nc", d / "knife.nc"), "deflection_y"),
         ((d / "bos.h5", d / "bos.h5"), "deflection_normal"),
-        ((d / "bos.h5", tmp_path / "none.h5"), "not found"),
-        ((d / "bos.h5", d / "knife.h5", "--line", "1,2,3"), "--line"),
+        ((d / "bos.h5", tmp_path / "none.nc"), "not found"),
+        ((d / "bos.h5", d / "knife.nc", "--line", "1,2,3"), "--line"),
     ]:
         r = invoke("compare", *args)
         assert r.exit_code == 2, r.output

@@ -4,7 +4,8 @@ Outside sources of the checks: the pictures are rendered from the analytic
 column + weak-lens field through the knife-edge contrast law (see
 test_schlieren_calibration.py: Settles 2001, ch. 3; paraxial thin lens
 eps = -r/f_L), saved as 16-bit PNG; the result file is opened with xarray +
-h5netcdf (general-purpose netCDF4/HDF5 readers); JSON is parsed with the
+h5netcdf (general-purpose netCDF4/HDF5 readers) and checked with the CF
+conventions checker cfchecks (CF 1.8, UDUNITS-2); JSON is parsed with the
 standard library.
 """
 
@@ -48,7 +49,7 @@ LENS_ARGS = ("--lens-center-px", f"{LENS['center'][0]:g},{LENS['center'][1]:g}",
 def test_knife_edge_with_lens_writes_a_calibrated_result(pictures, tmp_path):
     xr = pytest.importorskip("xarray")
     pytest.importorskip("h5netcdf")
-    out = tmp_path / "ke.h5"
+    out = tmp_path / "ke.nc"
     plot = tmp_path / "response.png"
     r = invoke("knife-edge", pictures["pic"], "--no-flow", pictures["ref"], "--knife", "vertical",
                "--object-pixel-mm", PIX_M * 1e3, *LENS_ARGS, "--out", out, "--plot", plot, "--json")
@@ -65,7 +66,12 @@ def test_knife_edge_with_lens_writes_a_calibrated_result(pictures, tmp_path):
         assert dn.attrs["units"] == "rad" and ds["y"].attrs["units"] == "m" and ds["y"].attrs["axis"] == "Y"
         assert set(dn.coords) >= {"y", "x", "row_px", "col_px"}
         assert ds["x"].values[1] - ds["x"].values[0] == pytest.approx(PIX_M)
-        assert np.allclose(np.abs(np.diff(ds["y"].values)), PIX_M)       # y up or down, as BOS result files
+        assert np.allclose(np.diff(ds["y"].values), -PIX_M)      # y points UP in the file, like BOS result files
+        assert "positive" not in ds["y"].attrs and ds["row_px"].attrs["units"] == "1"
+        assert ds["row_px"].attrs["display_units"] == "px"
+        assert ds.attrs["Conventions"] == "CF-1.8" and ds.attrs["history"].count("bos knife-edge") == 1
+        assert "calibration lens" in ds.attrs["source"] and "Settles, G. S. (2001)" in ds.attrs["references"]
+        assert ds["saturated"].dtype == np.int8 and list(ds["saturated"].attrs["flag_values"]) == [0, 1]
         assert np.array_equal(ds["row_px"].values, np.arange(dn.shape[0]))
         eps = dn.values
         flags = {k: ds[k].values.astype(bool) for k in ("saturated", "lens", "uncalibrated", "invalid")}
@@ -80,18 +86,23 @@ def test_knife_edge_with_lens_writes_a_calibrated_result(pictures, tmp_path):
     true_sat = ((pictures["ratio"] <= 0) | (pictures["ratio"] >= H_M / A_M)) & ~pictures["in_lens"]
     assert flags["saturated"][true_sat].mean() > 0.97
     assert np.array_equal(flags["lens"], pictures["in_lens"])
+    from test_cf_compliance import assert_cfchecks_clean
+
+    assert_cfchecks_clean([out], tmp_path)
 
 
 def test_knife_edge_with_optical_parameters(pictures, tmp_path):
-    out = tmp_path / "ke.h5"
+    out = tmp_path / "ke.nc"
     r = invoke("knife-edge", pictures["pic"], "--no-flow", pictures["ref"], "--knife", "90",
                "--object-pixel-mm", PIX_M * 1e3, "--schlieren-focal-length-m", F2_M,
-               "--source-image-height-mm", H_M * 1e3, "--cutoff", 0.5, "--out", out)
+               "--source-image-height-mm", H_M * 1e3, "--cutoff", 0.5, "--out", tmp_path / "ke")
     assert r.exit_code == 0, r.output
     assert "caution" in r.stdout and "calibrated range" in r.stdout
     from bos.store import read_result
 
+    assert out.is_file() and not (tmp_path / "ke").exists()  # .nc added to a name without suffix
     data = read_result(out)
+    assert "schlieren optics" in data.attrs["source"]
     eps = data.variables["deflection_normal"].data
     ok = np.isfinite(eps) & ~data.variables["uncalibrated"].data & ~pictures["in_lens"]
     err = eps[ok] - pictures["eps_n"][ok]
@@ -108,22 +119,22 @@ def _one_line_error(r, *words):
 
 
 def test_bad_input_exits_2_with_one_line(pictures, tmp_path):
-    base = [pictures["pic"], "--no-flow", pictures["ref"], "--object-pixel-mm", 0.1, "--out", tmp_path / "o.h5"]
+    base = [pictures["pic"], "--no-flow", pictures["ref"], "--object-pixel-mm", 0.1, "--out", tmp_path / "o.nc"]
     _one_line_error(invoke("knife-edge", *base, *LENS_ARGS), "knife orientation missing")
     _one_line_error(invoke("knife-edge", *base, "--knife", "diagonal", *LENS_ARGS), "knife orientation")
     _one_line_error(invoke("knife-edge", *base, "--knife", "vertical", "--lens-center-px", "900,20",
                            "--lens-radius-px", 30, "--lens-focal-length-m", 4), "outside the picture")
     small = _png(tmp_path / "small.png", np.full((100, 120), 0.4))
     _one_line_error(invoke("knife-edge", pictures["pic"], "--no-flow", small, "--knife", "vertical",
-                           "--object-pixel-mm", 0.1, "--out", tmp_path / "o.h5", *LENS_ARGS), "different sizes")
+                           "--object-pixel-mm", 0.1, "--out", tmp_path / "o.nc", *LENS_ARGS), "different sizes")
     flat = _png(tmp_path / "flat.png", np.full((160, 220), 1.0))
     _one_line_error(invoke("knife-edge", flat, "--no-flow", pictures["ref"], "--knife", "vertical",
-                           "--object-pixel-mm", 0.1, "--out", tmp_path / "o.h5", *LENS_ARGS), "saturated")
+                           "--object-pixel-mm", 0.1, "--out", tmp_path / "o.nc", *LENS_ARGS), "saturated")
     _one_line_error(invoke("knife-edge", *base, "--knife", "vertical", "--lens-radius-px", 30), "--lens-center-px")
     _one_line_error(invoke("knife-edge", *base, "--knife", "vertical"), "no calibration")
     _one_line_error(invoke("knife-edge", pictures["pic"], "--no-flow", pictures["ref"], "--knife", "vertical",
                            "--object-pixel-mm", 0.1, "--out", pictures["ref"], *LENS_ARGS), "input file")
-    assert not (tmp_path / "o.h5").exists()
+    assert not (tmp_path / "o.nc").exists()
 
 
 def test_virtual_knife_edge_command(tmp_path):

@@ -704,7 +704,22 @@ def knife_edge_variables(res: KnifeEdgeResult) -> tuple[dict[str, Any], dict[str
         "invalid": var(res.invalid.astype(bool), "1", "1 = no light in the no-flow picture",
                        flag_meanings="lit unlit"),
     }
-    attrs = {"title": "calibrated knife-edge schlieren picture", "source": "bos knife-edge",
+    from .. import __version__
+
+    method = "calibration lens" if res.lens_spec is not None else "schlieren optics (f2, source image height)"
+    attrs = {"title": "calibrated knife-edge schlieren picture",
+             "source": f"knife-edge schlieren picture calibrated with bos-toolkit {__version__} "
+                       f"(bos knife-edge; {method}; {res.fit.law} response law)",
+             "references": "\n".join(KNIFE_EDGE_REFERENCES),
              "coordinate_note": coords["y"]["attrs"]["description"],
              "calibration": res.calibration_attrs(), "summary": res.summary()}
     return coords, variables, attrs
+
+
+#: Published methods behind a knife-edge result file (CF global attribute ``references``, one per line).
+KNIFE_EDGE_REFERENCES = (
+    "Settles, G. S. (2001). Schlieren and Shadowgraph Techniques. Springer, ch. 3 (knife-edge contrast law, "
+    "measuring range, calibration with a weak lens).",
+    "Hargather, M. J. and Settles, G. S. (2012). A comparison of three quantitative schlieren techniques. "
+    "Optics and Lasers in Engineering 50, 8-17.",
+)

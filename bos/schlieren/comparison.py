@@ -325,9 +325,30 @@ def _profile_figure(samples: dict[str, np.ndarray], path: Path, title: str) -> P
     return _save_figure(fig, path)
 
 
+#: Units of the profile CSV columns (the deflection columns are in rad); pixel positions count knife pixels.
+_PROFILE_UNITS = {"s_m": "m", "row_px": "px", "col_px": "px"}
+
+
+def comparison_attributes(comp: Comparison) -> dict[str, Any]:
+    """Global attributes of the comparison file: CF ``title``/``source``/``references`` and the details."""
+    from .. import __version__
+    from .calibration import KNIFE_EDGE_REFERENCES
+
+    registration = ("Umeyama, S. (1991). Least-squares estimation of transformation parameters between two point "
+                    "patterns. IEEE Trans. Pattern Anal. Mach. Intell. 13, 376-380."
+                    if comp.registration == "control points" else
+                    "Padfield, D. (2012). Masked object registration in the Fourier domain. IEEE Trans. Image "
+                    "Process. 21, 2706-2718.")
+    return {"title": "BOS vs knife-edge comparison",
+            "source": f"BOS deflection field registered onto a calibrated knife-edge picture with bos-toolkit "
+                      f"{__version__} (bos compare; registration: {comp.registration})",
+            "references": "\n".join([*KNIFE_EDGE_REFERENCES, registration]),
+            "comparison": comp.details()}
+
+
 def write_comparison(comp: Comparison, directory, *, name: str = "compare",
                      lines_px: Sequence[Sequence[float]] | None = None) -> list[Path]:
-    """Write the comparison: HDF5 fields, panels, difference map, profiles (CSV + PNG), JSON summary.
+    """Write the comparison: netCDF-4 fields (``<name>.nc``), panels, difference map, profiles (CSV + PNG), JSON summary.
 
     Parameters
     ----------
@@ -372,8 +393,9 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
             "difference": {"dims": ("y", "x"), "data": comp.difference,
                            "attrs": {"units": "rad", "long_name": "knife-edge minus BOS deflection normal to the knife"}},
         }
-        written.append(store.write_result(d / f"{name}.h5", coords=coords, variables=variables,
-                                          attrs={"title": "BOS vs knife-edge comparison", "comparison": comp.details()}))
+        written.append(store.write_result(d / f"{name}.nc", coords=coords, variables=variables,
+                                          attrs={**comparison_attributes(comp), "coordinate_note": coords["y"]["attrs"]["description"]},
+                                          history="bos compare"))
         line0, kp = samples[0], comp.knife_object_pixel_m
         prof_m = [[float(comp.x_m[0] + (line0["col_px"][i] - comp.cols_px[0]) * kp),
                    float(comp.y_m[0] + (line0["row_px"][i] - comp.rows_px[0]) * kp)] for i in (0, -1)]
@@ -386,11 +408,9 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
         written.append(fields_figure([panels[2]], x_m=comp.x_m, y_m=comp.y_m, path=d / f"{name}-difference.png",
                                      suptitle="difference map: knife edge - BOS"))
         for i, smp in enumerate(samples, start=1):
-            table = np.column_stack(list(smp.values()))
             path = d / f"{name}-profile-{i}.csv"
-            with atomic_path(path) as tmp:
-                np.savetxt(tmp, table, delimiter=",", header=",".join(smp), comments="", fmt="%.9g")
-            written.append(path)
+            labels = [store.csv_label(k, _PROFILE_UNITS.get(k, "rad")) for k in smp]
+            written.append(store.write_table(path, labels, list(smp.values()), fmt="%.9g"))
             r0, c0, r1, c1 = smp["row_px"][0], smp["col_px"][0], smp["row_px"][-1], smp["col_px"][-1]
             written.append(_profile_figure(smp, d / f"{name}-profile-{i}.png",
                                            f"profile {i}: ({r0:.0f}, {c0:.0f}) -> ({r1:.0f}, {c1:.0f}) knife px"))
