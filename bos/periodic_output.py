@@ -873,15 +873,28 @@ def cycle_gif(result: PeriodicResult, path: Path, *, n: int = CYCLE_FRAMES) -> P
 
 
 def write_periodic_profile_csv(result: PeriodicResult, path: Path) -> Path:
-    """Profile along the beam: s, x, y [m], Re P, Im P, |P| [Pa], phase [rad], SPL [dB], sigma [Pa]."""
+    """Profile along the beam, one header line ``name [units]``: s, x, y [m] (the result file's coordinates:
+    y up), Re P, Im P, |P| [Pa], phase [rad], SPL [dB], sigma [Pa]."""
+    from .output import file_y
+    from .store import csv_label, write_table
+
     prof = result.profile
     p = prof["pressure"]
-    cols = {"s_m": prof["s_m"], "x_m": prof["x_m"], "y_m": prof["y_m"], "pressure_real_pa": p.real,
-            "pressure_imag_pa": p.imag, "pressure_amplitude_pa": np.abs(p), "pressure_phase_rad": np.angle(p),
-            "sound_pressure_level_db": prof["sound_pressure_level"], "pressure_sigma_pa": prof["pressure_sigma"]}
-    np.savetxt(path, np.column_stack(list(cols.values())), delimiter=",", header=",".join(cols), comments="",
-               fmt="%.9g")
-    return Path(path)
+    cols = {("s_m", "m"): prof["s_m"], ("x_m", "m"): prof["x_m"], ("y_m", "m"): file_y(prof["y_m"]),
+            ("pressure_real", "Pa"): p.real, ("pressure_imag", "Pa"): p.imag, ("pressure_amplitude", "Pa"): np.abs(p),
+            ("pressure_phase", "rad"): np.angle(p), ("sound_pressure_level", "dB"): prof["sound_pressure_level"],
+            ("pressure_sigma", "Pa"): prof["pressure_sigma"]}
+    return Path(write_table(path, [csv_label(n, u) for n, u in cols], list(cols.values()), fmt="%.9g"))
+
+
+#: Published methods of the phase-resolved processing (added to the run's ``references``, one per line).
+PERIODIC_REFERENCES = (
+    "IEEE Std 1057-2017. IEEE Standard for Digitizing Waveform Recorders (three-parameter least-squares sine fit, "
+    "used per pixel as the lock-in fit).",
+    "Kinsler, L. E., Frey, A. R., Coppens, A. B. and Sanders, J. V. (2000). Fundamentals of Acoustics, 4th ed. "
+    "Wiley (linear acoustics p' = c^2 rho', complex amplitudes, standing-wave ratio).",
+    "ISO 1683:2015. Acoustics - Preferred reference values for acoustical and vibratory levels (20 uPa).",
+)
 
 
 def save_periodic(result: PeriodicResult, exp: Experiment) -> list[Path]:
@@ -905,15 +918,24 @@ def save_periodic(result: PeriodicResult, exp: Experiment) -> list[Path]:
     prepare_output_dir(paths["result"].parent)
     gas = exp.medium.gas if not exp.medium.composition else "mixture"
     coords, variables = periodic_variables(result, gas=gas)
-    attrs = dict(result.reference_run.attrs)
-    attrs.update(coordinate_note=getattr(output, "COORDINATE_NOTE", None) or output.Y_DOWN_NOTE,
-                 summary_coordinates="positions in the summary (nodes, antinodes, profile_m) are object-plane "
-                                     "metres with y DOWN (growing with the image row), as in the experiment file",
-                 title=f"BOS phase-resolved sound field {exp.output.name}",
-                 Conventions="CF-1.8")
+    line_file = [[float(x), float(output.file_y(y))] for x, y in result.profile["line_m"]]
+    attrs = output.file_attributes(result.reference_run, exp, line_file_m=line_file)
+    import bos
+
+    attrs.update(title=f"BOS phase-resolved sound field {exp.output.name}",
+                 source=(f"phase-resolved background-oriented schlieren of a periodic sound source, processed with "
+                         f"bos-toolkit {bos.__version__} (bos periodic: {len(result.frames)} frames, per-pixel lock-in "
+                         f"fit of {result.summary.get('harmonics_fitted', 1)} harmonic(s), real and imaginary parts "
+                         f"reconstructed separately: {(attrs.get('reconstruction') or {}).get('kind', 'planar')})"),
+                 references=attrs["references"] + "\n" + "\n".join(PERIODIC_REFERENCES),
+                 summary_coordinates="positions in the summary (nodes, antinodes, profile_m, travel_direction) are "
+                                     "object-plane metres with y DOWN (growing with the image row), as in the "
+                                     "experiment file and the --json output; profile_line_m is the same line in "
+                                     "the file's coordinates (y up)")
     with OutputSet(paths["result"].parent, f"{exp.output.name}-periodic") as out:
         attrs["run_id"] = out.run_id
-        store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs)
+        store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs,
+                           history=f"bos periodic from {exp.source_file or 'command-line options'}")
         write_periodic_profile_csv(result, out.path(paths["profile_csv"]))
         if exp.output.figures:
             staged = {k: out.path(v) for k, v in paths.items() if k.startswith(("fig_", "gif_"))}

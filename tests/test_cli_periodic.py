@@ -76,6 +76,38 @@ def test_cli_writes_the_periodic_set(sequence):
     assert gif.shape[0] == PO.CYCLE_FRAMES and not np.array_equal(gif[0], gif[PO.CYCLE_FRAMES // 4])
 
 
+def test_periodic_file_follows_the_result_file_conventions(sequence, tmp_path):
+    """Same conventions as bos run's file: CF 1.8 (cfchecks: 0 errors, 0 warnings), y up, history/source/
+    references/experiment text, profile line in file coordinates; the profile CSV has units and y up."""
+    from bos.store import open_result
+
+    d = sequence["dir"]
+    res = _run([str(d / "exp.toml"), "--phases", str(d / "phases.csv"), "--no-figures", "--json"])
+    assert res.exit_code == 0, res.output
+    s = json.loads(res.stdout)["summary"]
+    nc = d / "out" / "beam-periodic.nc"
+    ds = open_result(nc)
+    a = ds.attrs
+    assert np.all(np.diff(ds.y.values) < 0) and np.all(np.diff(ds.row_px.values) > 0)  # y up, rows down
+    assert ds.displacement_amplitude_x.attrs["units"] == "1" and ds.displacement_amplitude_x.attrs["display_units"] == "px"
+    assert a["Conventions"] == "CF-1.8" and a["history"][:4].isdigit() and "bos periodic from" in a["history"]
+    assert "lock-in" in a["source"] and "IEEE Std 1057" in a["references"] and "Richard, H." in a["references"]
+    assert a["experiment_file_text"] == (d / "exp.toml").read_text()
+    assert not [k for k in a if "." in k] and isinstance(a["summary"], dict)
+    # the profile line of the summary (y down) is stored with y up
+    (x0, y0), (x1, y1) = s["profile_m"]
+    np.testing.assert_allclose(a["profile_line_m"], [x0, -y0, x1, -y1], rtol=0, atol=1e-15)
+    csv = d / "out" / "beam-periodic-profile.csv"
+    header = csv.read_text().splitlines()[0].split(",")
+    assert header[:4] == ["s [m]", "x [m]", "y [m]", "pressure_real [Pa]"] and "sound_pressure_level [dB]" in header
+    table = np.genfromtxt(csv, delimiter=",", skip_header=1)
+    np.testing.assert_allclose(table[[0, -1], 2], [-y0, -y1], atol=1e-12)
+    np.testing.assert_allclose(np.hypot(table[:, 3], table[:, 4]), table[:, 5], rtol=1e-6)
+    from test_cf_compliance import assert_cfchecks_clean
+
+    assert_cfchecks_clean([nc], tmp_path)
+
+
 def test_higher_harmonics_and_frame_sigma(sequence):
     # 5 distinct phases fit a mean + 2 harmonics exactly (no residual dof): the uncertainties come from
     # the per-frame correlation uncertainties, and a linear field has no second harmonic
