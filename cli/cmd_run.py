@@ -46,6 +46,23 @@ def _fmt(value: Any, fmt: str) -> str:
     return format(float(value), fmt)
 
 
+def context_lines(summary: dict[str, Any]) -> list[str]:
+    """Where the camera motion was fitted and whether the ambient region is ambient (plain text)."""
+    out = []
+    cm = summary.get("camera_motion")
+    if cm:
+        rms = cm.get("residual_rms_px") or [float("nan")] * 2
+        out.append(f"camera motion fitted on the {cm.get('region')}: {cm.get('used_vectors')} of "
+                   f"{cm.get('candidate_vectors')} vectors used ({100 * float(cm.get('excluded_fraction') or 0):.0f} % "
+                   f"left out as flow), residual rms (dy, dx) {float(rms[0]):.4f}, {float(rms[1]):.4f} px"
+                   + ("" if cm.get("consistent", True) else " -- NOT consistent with one rigid motion"))
+    rr = summary.get("reference_region")
+    if rr:
+        state = "ambient (no signal beyond the noise)" if rr.get("ambient") else "NOT ambient"
+        out.append(f"reference region {rr.get('region')}: {state}")
+    return out
+
+
 def print_summary(summary: dict[str, Any], *, title: str, files: list[Path] | None = None) -> None:
     """Print the run summary as a table (stdout), then warnings and files."""
     from rich.console import Console
@@ -61,6 +78,8 @@ def print_summary(summary: dict[str, Any], *, title: str, files: list[Path] | No
         if key in summary:
             table.add_row(label, _fmt(summary[key], fmt), unit)
     console.print(table)
+    for line in context_lines(summary):
+        console.print(escape(line), highlight=False)
     for w in summary.get("warnings") or []:
         console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
     for c in summary.get("cautions") or []:

@@ -184,3 +184,14 @@ def test_half_sample_mode_against_known_mixtures():
     v = np.concatenate([peak, tail])
     assert abs(half_sample_mode(v)) < 0.005 < abs(np.median(v))
     assert half_sample_mode(np.array([1.0, 2.0, 2.1, 9.0])) == pytest.approx(2.05)
+
+
+def test_terminal_summary_names_the_camera_region_and_the_ambient_check():
+    from cli.cmd_run import context_lines
+
+    lines = context_lines({"camera_motion": {"region": "border band", "used_vectors": 72, "candidate_vectors": 497,
+                                             "excluded_fraction": 0.855, "residual_rms_px": [0.0019, 0.0021],
+                                             "consistent": False},
+                           "reference_region": {"region": "edges", "ambient": False}})
+    assert "border band: 72 of 497 vectors used (86 % left out as flow)" in lines[0]
+    assert "NOT consistent" in lines[0] and lines[1] == "reference region edges: NOT ambient"
