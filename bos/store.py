@@ -27,7 +27,7 @@ import re
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import IO, Any, Mapping, Sequence
+from typing import IO, Any, Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -145,6 +145,9 @@ def _as_variable(name: str, spec: Any, *, coord: bool) -> Variable:
     else:
         form = "(array, attrs)" if coord else "(dims, array, attrs)"
         raise InputError(f"{name!r} must be {form} or a dict with dims/data/attrs, got {type(spec).__name__}")
+    if data is None and isinstance(spec, Mapping) and not coord and "shape" in spec and "dtype" in spec:
+        # filled later through write_result(fill=...): a zero-strided view holds the shape and type, no memory
+        data = np.broadcast_to(np.zeros((), np.dtype(spec["dtype"])), tuple(int(n) for n in spec["shape"]))
     if data is None:
         raise InputError(f"{name!r} has no data")
     if isinstance(dims, str) or dims is None:
@@ -155,24 +158,46 @@ def _as_variable(name: str, spec: Any, *, coord: bool) -> Variable:
         raise InputError(f"{name!r} has {arr.ndim} dimension(s) but dims {dims}")
     if coord and arr.ndim != 1:
         raise InputError(f"coordinate {name!r} must be 1-D, got shape {arr.shape}")
-    if arr.dtype.kind not in "biuf":
-        raise InputError(f"{name!r} must be numeric or boolean, got dtype {arr.dtype}")
+    text = not coord and (arr.dtype.kind in "US" or (arr.dtype.kind == "O" and all(isinstance(v, str)
+                                                                                    for v in arr.ravel())))
+    if arr.dtype.kind not in "biuf" and not text:
+        raise InputError(f"{name!r} must be numeric, boolean or text, got dtype {arr.dtype}")
     attrs = dict(attrs or {})
-    for key in ("units", "long_name"):
+    for key in ("long_name",) if text else ("units", "long_name"):
         value = attrs.get(key)
         if not isinstance(value, str) or not value.strip():
             raise InputError(f"variable {name!r} has no {key!r} attribute (use '1' for dimensionless units)")
     attrs = {_check_name(k, f"attribute of {name!r}"): _plain_attr(name, k, v) for k, v in attrs.items() if v is not None}
-    if arr.dtype == np.bool_:
+    if text:
+        # CF 1.8 section 2.2: text as a character array whose last dimension is the string length
+        # (netCDF-C and the CF checker reject variable-length strings); UTF-8, named in _Encoding
+        encoded = [str(v).encode("utf-8") for v in arr.ravel()]
+        width = max([1, *map(len, encoded)])
+        arr = np.frombuffer(np.array(encoded, dtype=f"S{width}").tobytes(), "S1").reshape(*arr.shape, width)
+        dims += (f"{name}_strlen",)
+        attrs.pop("units", None)
+        attrs["_Encoding"] = "utf-8"
+    elif arr.dtype == np.bool_:
         # CF 1.8 section 2.2 has no unsigned types: flags are signed bytes
-        arr = arr.astype(np.int8)
+        arr = _astype(arr, np.int8)
         attrs["flag_values"] = np.array([0, 1], np.int8)
         attrs.setdefault("flag_meanings", "false true")
     elif arr.dtype.kind == "u" and arr.dtype.itemsize < 8:
-        arr = arr.astype(np.dtype(f"i{2 * arr.dtype.itemsize}"))  # unsigned -> next wider signed type
+        arr = _astype(arr, np.dtype(f"i{2 * arr.dtype.itemsize}"))  # unsigned -> next wider signed type
     if "flag_values" in attrs:
         attrs["flag_values"] = np.asarray(attrs["flag_values"]).astype(arr.dtype)
     return Variable(dims=dims, data=arr, attrs=attrs)
+
+
+def _is_placeholder(arr: np.ndarray) -> bool:
+    """A zero-strided view standing for a variable that write_result(fill=...) fills later."""
+    return arr.ndim > 0 and arr.size > 1 and not any(arr.strides)
+
+
+def _astype(arr: np.ndarray, dtype) -> np.ndarray:
+    if _is_placeholder(arr):
+        return np.broadcast_to(np.zeros((), dtype), arr.shape)
+    return arr.astype(dtype)
 
 
 def _plain_attr(var: str, key: str, value: Any) -> Any:
@@ -268,6 +293,7 @@ def write_result(
     variables: Mapping[str, Any],
     attrs: Mapping[str, Any] | None = None,
     history: str = "written by bos.store.write_result",
+    fill: Callable[[Callable[[str, Any, Any], None]], None] | None = None,
 ) -> Path:
     """Write coordinates, variables and attributes to a netCDF-4 / CF-1.8 file.
 
@@ -287,7 +313,12 @@ def write_result(
         with ``dims``, ``data``, ``attrs``.  Boolean arrays are stored as
         signed-byte flags (``flag_values = [0, 1]``, ``flag_meanings``);
         unsigned integers as the next wider signed type (CF has no unsigned
-        types).
+        types); text arrays (str) as CF character arrays (UTF-8, an extra
+        last dimension ``<name>_strlen``, attribute ``_Encoding``; no
+        ``units`` needed).  A dict with ``shape`` and ``dtype`` instead of
+        ``data`` creates the variable empty (chunked by the first
+        dimension) for ``fill`` to write, so large series need not be held
+        in memory.
     attrs : dict, optional
         Global attributes.  Numbers, strings and numeric 1-D arrays are
         stored as they are; anything else (nested dictionaries, lists of
@@ -297,6 +328,11 @@ def write_result(
         What made the file: added, with a UTC time stamp and the software
         version, as the first line of the CF ``history`` attribute (earlier
         lines from ``attrs["history"]`` follow).
+    fill : callable, optional
+        Called once, after all variables are created and before the file is
+        renamed into place, as ``fill(write)``; ``write(name, index,
+        values)`` stores ``values`` at ``index`` of a variable (booleans as
+        flags).  An exception from ``fill`` leaves no file behind.
 
     Every coordinate and variable needs ``units`` and ``long_name``
     attributes; set ``standard_name`` where CF has one (see
@@ -332,6 +368,9 @@ def write_result(
     dim_coords = {n: v for n, v in cvars.items() if v.dims == (n,)}
     aux_coords = {n: v for n, v in cvars.items() if v.dims != (n,)}
     sizes = {n: v.data.shape[0] for n, v in dim_coords.items()}
+    for name, var in dvars.items():  # string-length dimensions of text variables have no coordinate
+        if var.data.dtype == np.dtype("S1"):
+            sizes[var.dims[-1]] = var.data.shape[-1]
     for name, var in {**aux_coords, **dvars}.items():
         for dim, size in zip(var.dims, var.data.shape):
             if dim not in sizes:
@@ -355,7 +394,11 @@ def write_result(
         kw: dict[str, Any] = {}
         if var.data.ndim >= 1 and var.data.size >= 4096:
             kw = {"compression": "gzip", "compression_opts": 4, "shuffle": True, "chunks": True}
-        v = nc.create_variable(name, var.dims, data=var.data, **kw)
+        if _is_placeholder(var.data):
+            kw.update(chunks=(1, *var.data.shape[1:]), dtype=var.data.dtype)
+            v = nc.create_variable(name, var.dims, **kw)
+        else:
+            v = nc.create_variable(name, var.dims, data=var.data, **kw)
         for key, value in attributes.items():
             v.attrs[key] = value
 
@@ -374,6 +417,14 @@ def write_result(
                     create(nc, name, var, attributes)
                 for key, value in flat.items():
                     nc.attrs[key] = value
+                if fill is not None:
+                    def write(name: str, index: Any, values: Any) -> None:
+                        if name not in dvars:
+                            raise InputError(f"write_result fill: no variable {name!r}")
+                        values = np.asarray(values)
+                        nc.variables[name][index] = values.astype(np.int8) if values.dtype == np.bool_ else values
+
+                    fill(write)
     except (InputError, DataFileError):
         raise
     except (OSError, TypeError, ValueError) as exc:
@@ -513,6 +564,11 @@ def _unflatten_old(flat: Mapping[str, Any]) -> dict:
     return out
 
 
+def _bare_dimension(ds) -> bool:
+    """netCDF-4 stores a dimension without a coordinate variable as an empty dimension scale."""
+    return str(_attr_value(ds.attrs.get("NAME", ""))).startswith("This is a netCDF dimension but not")
+
+
 def _is_flag(values: np.ndarray, attrs: Mapping[str, Any]) -> bool:
     fv = attrs.get("flag_values")
     return values.dtype.kind in "iu" and fv is not None and np.array_equal(np.ravel(fv), [0, 1])
@@ -543,7 +599,7 @@ def read_result(path: str | os.PathLike, *, max_bytes: int = MAX_READ_BYTES) -> 
             gattrs = {k: _attr_value(v) for k, v in h5.attrs.items() if k not in _INTERNAL_ATTRS}
             items = {}
             for name, ds in h5.items():
-                if not isinstance(ds, h5py.Dataset):
+                if not isinstance(ds, h5py.Dataset) or _bare_dimension(ds):
                     continue
                 attrs = {k: _attr_value(v) for k, v in ds.attrs.items() if k not in _INTERNAL_ATTRS}
                 dims = tuple(
@@ -564,6 +620,11 @@ def read_result(path: str | os.PathLike, *, max_bytes: int = MAX_READ_BYTES) -> 
     for var in variables.values():
         if _is_flag(var.data, var.attrs):
             var.data = var.data.astype(bool)
+        elif var.data.dtype == np.dtype("S1") and var.data.ndim >= 1:  # CF character array -> str
+            width = var.data.shape[-1]
+            joined = np.ascontiguousarray(var.data).view(f"S{width}").reshape(var.data.shape[:-1])
+            var.data = np.char.decode(joined, str(var.attrs.pop("_Encoding", "utf-8")), "replace")
+            var.dims = var.dims[:-1]
     return ResultData(coords=coords, variables=variables, attrs=_decode_globals(p, gattrs, fmt))
 
 

@@ -376,3 +376,49 @@ def test_profile_of_linear_field_is_exact_and_nan_aware(tmp_path):
     np.testing.assert_allclose(back["y_m"], prof.y_m, rtol=1e-9)
     with pytest.raises(InputError, match="n >= 2"):
         profile(r, "temperature", start=(0, 0), end=(0.01, 0), n=1)
+
+
+def test_text_variables_and_variables_filled_later(tmp_path):
+    """Text as CF character arrays and a series written index by index (fill): netCDF-C, xarray and the
+    CF checker read them as written."""
+    n = 4
+    coords = {"frame": (np.arange(n), {"units": "1", "long_name": "frame"}),
+              "y": (Y, {"units": "m", "long_name": "y", "axis": "Y"}), "x": (X, {"units": "m", "long_name": "x"})}
+    names = ["a.png", "", "bé.png#3", "a much longer file name.tif"]
+    fields = [np.full((Y.size, X.size), 1.5 * i) for i in range(n)]
+    variables = {"source_file": (("frame",), np.array(names), {"long_name": "file of the frame"}),
+                 "field": {"dims": ("frame", "y", "x"), "shape": (n, Y.size, X.size), "dtype": np.float64,
+                           "attrs": {"units": "K", "long_name": "field"}},
+                 "flag": {"dims": ("frame", "y", "x"), "shape": (n, Y.size, X.size), "dtype": bool,
+                          "attrs": {"units": "1", "long_name": "flag", "flag_meanings": "no yes"}}}
+
+    def fill(write):
+        for i in range(n):
+            write("field", i, fields[i])
+            write("flag", i, fields[i] > 2.0)
+
+    path = write_result(tmp_path / "s.nc", coords=coords, variables=variables, fill=fill)
+    r = read_result(path)
+    assert r["source_file"].dims == ("frame",) and list(r["source_file"].data) == names
+    np.testing.assert_array_equal(r["field"].data, np.stack(fields))
+    assert r["flag"].data.dtype == bool and r["flag"].data.sum() == 2 * Y.size * X.size
+    assert "source_file_strlen" not in r.coords and "source_file_strlen" not in r.variables
+    netCDF4 = pytest.importorskip("netCDF4")
+    with netCDF4.Dataset(path) as nc:  # netCDF-C: a char array (NC_CHAR) decoded with _Encoding
+        assert nc["source_file"].dtype == np.dtype("S1") and list(nc["source_file"][:]) == names
+        assert nc["flag"].dtype == np.int8
+    ds = open_result(path)
+    assert list(ds.source_file.values) == names and ds.flag.dtype == bool
+    with h5py.File(path, "r") as h5:
+        assert h5["field"].chunks == (1, Y.size, X.size)
+    # a failing fill leaves no file (atomic write)
+    def broken(write):
+        write("field", 0, fields[0])
+        raise InputError("stop")
+
+    with pytest.raises(InputError, match="stop"):
+        write_result(tmp_path / "t.nc", coords=coords, variables=variables, fill=broken)
+    assert not (tmp_path / "t.nc").exists()
+    from test_cf_compliance import assert_cfchecks_clean
+
+    assert_cfchecks_clean([path], tmp_path)
