@@ -145,6 +145,12 @@ def child(args):
         ref = prepare_reference(ref, workers=1)
     times = []
     for _ in range(args.repeat):
+        if args.method.startswith("ours") and args.method != "ours-correlation-batch1":
+            # every timed run is a new pair: forget the deformation-bias calibration kept from the
+            # previous run of the same reference (a sequence against one reference keeps it)
+            from bos.displacement.correlation import _BIAS_CACHE
+
+            _BIAS_CACHE.clear()
         t0 = time.perf_counter()
         rr, cc, dy, dx, valid = run_method(args.method, ref, meas)
         times.append(time.perf_counter() - t0)

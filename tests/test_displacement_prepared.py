@@ -67,3 +67,27 @@ def test_prepared_reference_with_other_settings_and_through_estimate():
 def test_prepare_reference_checks_the_texture():
     with pytest.raises(NoTextureError, match="reference"):
         prepare_reference(np.full((64, 64), 7.0))
+
+
+def test_bias_calibration_reused_only_for_the_same_crop(base):
+    from bos.displacement import correlation as C
+
+    C._BIAS_CACHE.clear()
+    meas = shifted(base, (0.3, -0.45))
+    first = correlate(base, meas)
+    assert len(C._BIAS_CACHE) == 1
+    again = correlate(base.copy(), meas)  # same content in another array: the calibration is reused
+    assert len(C._BIAS_CACHE) == 1
+    assert np.array_equal(first.dy, again.dy, equal_nan=True) and np.array_equal(first.dx, again.dx, equal_nan=True)
+    other = base.copy()
+    other[128, 128] += 0.5  # one pixel of the central calibration crop differs: measured anew
+    correlate(other, meas)
+    assert len(C._BIAS_CACHE) == 2
+    # the kept calibration is what a fresh measurement on this texture gives
+    kept = next(iter(C._BIAS_CACHE.values()))
+    fresh = C.deformation_bias(base, window=16, order=3, symmetric=False, direct=True)
+    np.testing.assert_array_equal(kept.coefficients, fresh.coefficients)
+    np.testing.assert_array_equal(kept.residual.coefficients, fresh.residual.coefficients)
+    # and the vectors still follow the exact (Fourier) shift
+    inner = (slice(2, -2), slice(2, -2))
+    assert abs(np.mean(again.dy[inner]) - 0.3) < 0.002 and abs(np.mean(again.dx[inner]) + 0.45) < 0.002

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+import threading
 from functools import partial
 
 import numpy as np
@@ -242,6 +244,39 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     return grid_r, grid_c, dy, dx, peak, masked, sy, sx
 
 
+def _bias_crop(image, size):
+    """The central square crop (even side <= ``size``) on which :func:`deformation_bias` measures."""
+    n = int(min(size, *image.shape) // 2 * 2)
+    r0 = (image.shape[0] - n) // 2
+    c0 = (image.shape[1] - n) // 2
+    return image[r0:r0 + n, c0:c0 + n]
+
+
+# deformation_bias results of recent references, keyed by a digest of the crop it reads and the
+# settings (the result depends on nothing else), so that frames processed one call at a time
+# against the same reference array do not repeat the calibration.
+_BIAS_CACHE: dict = {}
+_BIAS_CACHE_SIZE = 8
+_BIAS_LOCK = threading.Lock()
+
+
+def _reference_bias(image, *, window, order, symmetric, direct, workers=1):
+    """:func:`deformation_bias` of ``image``, reused while its calibration crop and settings repeat."""
+    crop = np.ascontiguousarray(_bias_crop(image, 128))
+    key = (hashlib.blake2b(crop.tobytes(), digest_size=20).digest(), crop.shape, crop.dtype.str, int(window),
+           int(order), bool(symmetric), bool(direct))
+    with _BIAS_LOCK:
+        hit = _BIAS_CACHE.get(key)
+    if hit is not None:
+        return hit
+    bias = deformation_bias(image, window=window, order=order, workers=workers, symmetric=symmetric, direct=direct)
+    with _BIAS_LOCK:
+        while len(_BIAS_CACHE) >= _BIAS_CACHE_SIZE:
+            _BIAS_CACHE.pop(next(iter(_BIAS_CACHE)))
+        _BIAS_CACHE[key] = bias
+    return bias
+
+
 def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetric=True, direct=True):
     """Measure the bias that image deformation itself adds, on this image's texture.
 
@@ -261,10 +296,8 @@ def deformation_bias(image, *, window=16, order=3, size=128, workers=1, symmetri
         by ``s`` moves the images relative to each other by ``s - bias(s)``,
         so the estimators deform by ``p + bias(p)`` to realise a predictor p.
     """
-    n = int(min(size, *image.shape) // 2 * 2)
-    r0 = (image.shape[0] - n) // 2
-    c0 = (image.shape[1] - n) // 2
-    crop = image[r0:r0 + n, c0:c0 + n].astype(np.float64)
+    crop = _bias_crop(image, size).astype(np.float64)
+    n = crop.shape[0]
     ext = np.block([[crop, crop[:, ::-1]], [crop[::-1], crop[::-1, ::-1]]])
     spec = np.fft.fft2(ext)
     coef_a = _deform.spline_coefficients(crop.astype(np.float32), order) if symmetric else None
@@ -500,8 +533,8 @@ class PreparedReference:
         """:func:`deformation_bias` for these settings (measured once per settings, then reused)."""
         key = (int(window), int(order), bool(symmetric), bool(direct))
         if key not in self._bias:
-            self._bias[key] = deformation_bias(self.image, window=window, order=order, workers=workers,
-                                               symmetric=symmetric, direct=direct)
+            self._bias[key] = _reference_bias(self.image, window=window, order=order, workers=workers,
+                                              symmetric=symmetric, direct=direct)
         return self._bias[key]
 
     def level(self, f):
@@ -587,8 +620,8 @@ def _multipass(ref, meas, mask, *, windows, overlap, final_iterations, order, ep
             bias = prepared.bias(window=schedule[-1], order=order, symmetric=symmetric, direct=direct,
                                  workers=workers)
         else:
-            bias = deformation_bias(ref, window=schedule[-1], order=order, workers=workers, symmetric=symmetric,
-                                    direct=direct)
+            bias = _reference_bias(ref, window=schedule[-1], order=order, workers=workers, symmetric=symmetric,
+                                   direct=direct)
     first_final = schedule.index(schedule[-1])
     redo = previous = None
     for k, window in enumerate(schedule):
