@@ -27,6 +27,7 @@ Usage:
     python benchmarks/bench_displacement.py            # 2048 x 2048 (4 MP)
     python benchmarks/bench_displacement.py --big      # 6000 x 4000 (24 MP), correlation vs openpiv
     python benchmarks/bench_displacement.py --size 1024 --repeat 3 --skip tvl1 always2
+    python benchmarks/bench_displacement.py --size 1024 --repeat 3 --rounds 5 --skip tvl1 ilk flow fast always2 symmetric
 
 Variants of ours: default (stops repeating the last window once converged),
 "fast" (final_iterations=1), "always2" (converged=None: two final passes
@@ -179,6 +180,8 @@ def main():
     p.add_argument("--size", type=int, default=2048, help="square image side [px] (default 2048 = 4 MP)")
     p.add_argument("--big", action="store_true", help="6000 x 4000 (24 MP); correlation vs openpiv only")
     p.add_argument("--repeat", type=int, default=1, help="timed runs per method (median reported)")
+    p.add_argument("--rounds", type=int, default=1,
+                   help="interleaved rounds over all methods (median of the rounds reported)")
     p.add_argument("--skip", nargs="*", default=[], help="methods to leave out (openpiv tvl1 ilk flow ...)")
     p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--method", help=argparse.SUPPRESS)
@@ -198,7 +201,7 @@ def main():
         methods += ["ours-flow", "tvl1", "ilk"]
     methods = [m for m in methods if not {m, m.replace("ours-", ""), m.split("-")[-1]} & set(args.skip)]
     print(f"image {shape[0]} x {shape[1]} px ({shape[0] * shape[1] / 1e6:.0f} MP), repeat {args.repeat}, "
-          f"{os.cpu_count()} cores; strong peak {STRONG_PX} px, weak peak {WEAK_PX} px")
+          f"rounds {args.rounds}, load {os.getloadavg()[0]:.1f}, {os.cpu_count()} cores; strong peak {STRONG_PX} px, weak peak {WEAK_PX} px")
     results = {}
     with tempfile.TemporaryDirectory() as data:
         for field, amp in (("strong", STRONG_PX), ("weak", WEAK_PX)):
@@ -208,13 +211,21 @@ def main():
             np.save(os.path.join(data, f"{field}_meas.npy"), pair.measurement.astype(np.float32))
             del pair
             print(f"rendered {field} pair in {time.perf_counter() - t0:.1f} s")
+            runs = {m: [] for m in methods}
+            for _ in range(args.rounds):  # methods interleaved, so load changes hit them all alike
+                for m in methods:
+                    runs[m].append(measure(m, field, data, args.repeat))
             for m in methods:
-                results[(m, field)] = r = measure(m, field, data, args.repeat)
-                if "error" in r:
+                ok = [r for r in runs[m] if "error" not in r]
+                if not ok:
+                    results[(m, field)] = r = runs[m][0]
                     print(f"  {m:26s} {field:6s} FAILED: {r['error']}")
-                else:
-                    print(f"  {m:26s} {field:6s} {r['time']:7.2f} s  peak {r['peak_mb']:6.0f} MB "
-                          f"(images loaded {r['base_mb']:5.0f} MB)  rms {r['rms']:.4f} px  valid {r['valid']:.3f}")
+                    continue
+                times = [r["time"] for r in ok]
+                results[(m, field)] = r = dict(ok[0], time=float(np.median(times)))
+                spread = f"  rounds {' '.join(f'{t:.2f}' for t in times)}" if len(times) > 1 else ""
+                print(f"  {m:26s} {field:6s} {r['time']:7.2f} s  peak {r['peak_mb']:6.0f} MB "
+                      f"(images loaded {r['base_mb']:5.0f} MB)  rms {r['rms']:.4f} px  valid {r['valid']:.3f}{spread}")
 
     def ratio(ours, ref):
         out = []
