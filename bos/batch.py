@@ -50,13 +50,15 @@ from ._io import atomic_path
 from .config import Experiment
 from .errors import BOSError, ConfigError, DataFileError, InputError
 from .frames import FrameRef, FrameSet, average_frames, read_frame
+from .store import SERIES_FORMAT_NAME
 
 __all__ = ["SERIES_FORMAT", "STATUS_OK", "STATUS_FAILED", "STATUS_REFERENCE", "STATUS_NAMES", "ReferenceSpec",
            "FrameTask", "FrameOutcome", "BatchReport", "batch_paths", "process_frame", "run_batch",
            "default_workers"]
 
-#: Global ``bos_file_format`` attribute of a series file.
-SERIES_FORMAT = "bos-toolkit series 1"
+#: Global ``bos_file_format`` attribute of a series file ("bos-toolkit series 2"; series 1 files were plain
+#: HDF5 with dotted attribute names).
+SERIES_FORMAT = SERIES_FORMAT_NAME
 STATUS_OK, STATUS_FAILED, STATUS_REFERENCE = 0, 1, 2
 #: status code -> word (file flag_meanings and the CSV table)
 STATUS_NAMES = {STATUS_OK: "ok", STATUS_FAILED: "failed", STATUS_REFERENCE: "reference"}
@@ -640,7 +642,9 @@ def _series_fingerprint(path: Path) -> str | None:
 def _clean_stale(paths: dict[str, Path]) -> None:
     """Remove temporary files left by a killed run (never complete files)."""
     series = paths["series"]
-    for tmp in series.parent.glob(f".{series.stem}.*{series.suffix}.part{series.suffix}"):
+    # "..name.*": the temporary file bos.store.write_result makes beside the series' own temporary file
+    for tmp in [*series.parent.glob(f".{series.stem}.*{series.suffix}.part{series.suffix}"),
+                *series.parent.glob(f"..{series.stem}.*{series.suffix}.part{series.suffix}")]:
         with contextlib.suppress(OSError):
             tmp.unlink()
     table = paths["table"]
@@ -884,7 +888,7 @@ def _run_locked(exp, frames: FrameSet, spec: ReferenceSpec, paths, *, n, gas, wo
         records = _series_records(old_series, frames)  # finished earlier: nothing to rewrite
     else:
         records = _join(paths, frames, spec, n=n, old_series=old_series, digest=digest, warnings=all_warnings,
-                        executor=executor)
+                        executor=executor, exp=exp)
     failed = [(r["frame"], r["error"]) for r in records if r["status"] == STATUS_FAILED]
     return BatchReport(series_file=paths["series"], table_file=paths["table"], frames=n,
                        done=sum(r["status"] == STATUS_OK for r in records), failed=failed,
@@ -896,16 +900,6 @@ def _run_locked(exp, frames: FrameSet, spec: ReferenceSpec, paths, *, n, gas, wo
 # ---------------------------------------------------------------------------
 # Joining the parts: the series file and the per-frame table
 # ---------------------------------------------------------------------------
-
-
-def _attr(key: str, value: Any, dtype=None) -> Any:
-    if key == "flag_values" and dtype is not None:
-        return np.asarray(value, dtype=dtype)
-    if isinstance(value, bool):
-        return np.uint8(value)
-    if isinstance(value, list):
-        return np.asarray(value)
-    return value
 
 
 class _FrameSource:
@@ -929,6 +923,18 @@ class _FrameSource:
         if self.old is None:
             raise DataFileError(f"frame {i} is missing from {self.parts}")
         return self._from_old(i)
+
+    def meta(self, i: int) -> dict:
+        """Status, error and per-frame numbers of frame ``i`` (no field arrays read)."""
+        part = self.parts / _part_name(i)
+        if part.exists():
+            meta = _part_meta(part)
+            if meta is None:
+                raise _DamagedPart(part)
+            return meta
+        if self.old is None:
+            raise DataFileError(f"frame {i} is missing from {self.parts}")
+        return self.meta_only(i)
 
     def meta_only(self, i: int) -> dict:
         """Status, error and per-frame numbers of frame ``i`` of the earlier series."""
@@ -958,6 +964,8 @@ def _series_records(path: Path, frames: FrameSet) -> list[dict]:
 
 
 def _text(value: Any) -> str:
+    if isinstance(value, np.ndarray):  # one row of a CF character array (series 2)
+        value = b"".join(value.tolist())
     return value.decode("utf-8", "replace") if isinstance(value, bytes) else str(value)
 
 
@@ -980,7 +988,7 @@ def _frame_record(i: int, ref: FrameRef, t: float, meta: dict) -> dict[str, Any]
 
 
 def _join(paths, frames: FrameSet, spec: ReferenceSpec, *, n, old_series, digest, warnings,
-          executor) -> list[dict]:
+          executor, exp: Experiment) -> list[dict]:
     """Write the series file and the table from the parts (and an earlier series)."""
     source = _FrameSource(paths["parts"], old_series)
     try:
@@ -994,7 +1002,7 @@ def _join(paths, frames: FrameSet, spec: ReferenceSpec, *, n, old_series, digest
             template = _template_from_series(old_series)
         with atomic_path(paths["series"]) as tmp:
             records = _write_series(tmp, source, frames, spec, n=n, template=template, digest=digest,
-                                    warnings=warnings, executor=executor)
+                                    warnings=warnings, executor=executor, exp=exp)
     finally:
         source.close()
     _write_table(paths["table"], records)
@@ -1014,19 +1022,19 @@ def _template_from_series(path: Path):
         for name in names:
             ds = h5[name]
             meta["variables"][name] = [["y", "x"], {k: _attr_value(v) for k, v in ds.attrs.items()
-                                                    if k not in _H5_INTERNAL}]
+                                                    if k not in _H5_INTERNAL and not k.startswith("_")}]
             arrays[f"v__{name}"] = ds[0]
         for name in ("y", "x", "row_px", "col_px"):
             if name in h5:
                 ds = h5[name]
                 dims = [name] if name in ("y", "x") else (["y"] if name == "row_px" else ["x"])
                 meta["coords"][name] = [dims, {k: _attr_value(v) for k, v in ds.attrs.items()
-                                               if k not in _H5_INTERNAL}]
+                                               if k not in _H5_INTERNAL and not k.startswith("_")}]
                 arrays[f"c__{name}"] = ds[()]
     return (meta, arrays) if names else None
 
 
-_H5_INTERNAL = ("CLASS", "NAME", "REFERENCE_LIST", "DIMENSION_LIST", "coordinates", "_Netcdf4Dimid")
+_H5_INTERNAL = ("CLASS", "NAME", "REFERENCE_LIST", "DIMENSION_LIST", "coordinates")  # and "_..." (netCDF layer)
 
 
 def _attr_value(v: Any) -> Any:
@@ -1040,111 +1048,100 @@ def _attr_value(v: Any) -> Any:
 
 
 def _write_series(tmp: Path, source: _FrameSource, frames: FrameSet, spec: ReferenceSpec, *, n, template,
-                  digest, warnings, executor) -> list[dict]:
-    import h5py
+                  digest, warnings, executor, exp: Experiment) -> list[dict]:
+    """Write the series through :func:`bos.store.write_result` (netCDF-4 / CF-1.8, as the run files): the
+    per-frame fields are created empty and filled one frame at a time, so the series is never in memory."""
+    from . import output, store
 
-    from . import output
-    from .store import _flatten
+    records = [_frame_record(i, ref, float(frames.time_s[i]), source.meta(i)) for i, ref in enumerate(frames.frames)]
+    coords: dict[str, Any] = {"frame": (np.arange(n, dtype=np.int64),
+                                        {"units": "1", "long_name": "frame number in input order"})}
+    variables: dict[str, Any] = {}
+    if template is not None:
+        tmeta, tarr = template
+        for name, (dims, attrs) in tmeta["coords"].items():
+            coords[name] = {"dims": tuple(dims), "data": tarr[f"c__{name}"], "attrs": attrs}
+        for name, (dims, attrs) in tmeta["variables"].items():
+            arr = tarr[f"v__{name}"]
+            variables[name] = {"dims": ("frame", *dims), "shape": (n, *arr.shape), "dtype": arr.dtype,
+                               "attrs": attrs}
+    fields = list(variables)
+    variables.update(_frame_variables(records, frames))
+    attrs: dict[str, Any] = dict(template[0].get("attrs", {})) if template is not None else {}
+    provenance = {k: v for k, v in attrs.items() if k not in ("inputs", "input_sha256", "input_info", "summary")}
+    gattrs = dict(provenance)
+    if "source" in gattrs:  # the experiment's [source] section; CF reserves "source" for a text
+        gattrs["flow_source"] = gattrs.pop("source")
+    import bos
 
-    records = []
-    with h5py.File(tmp, "w") as h5:
-        fr = h5.create_dataset("frame", data=np.arange(n, dtype=np.int64))
-        fr.make_scale("frame")
-        fr.attrs["units"] = "1"
-        fr.attrs["long_name"] = "frame number in input order"
-        scales = {"frame": fr}
-        fields: dict[str, Any] = {}
-        if template is not None:
-            tmeta, tarr = template
-            coords = tmeta["coords"]
-            for name in [c for c, (d, _) in coords.items() if d == [c]] + \
-                        [c for c, (d, _) in coords.items() if d != [c]]:
-                dims, attrs = coords[name]
-                ds = h5.create_dataset(name, data=tarr[f"c__{name}"])
-                if dims == [name]:
-                    ds.make_scale(name)
-                    scales[name] = ds
-                else:
-                    ds.dims[0].attach_scale(scales[dims[0]])
-                for k, v in attrs.items():
-                    ds.attrs[k] = _attr(k, v)
-            aux = " ".join(c for c, (d, _) in coords.items() if d != [c])
-            for name, (dims, attrs) in tmeta["variables"].items():
-                arr = tarr[f"v__{name}"]
-                ds = h5.create_dataset(name, shape=(n,) + arr.shape, dtype=arr.dtype, chunks=(1,) + arr.shape,
-                                       compression="gzip", compression_opts=4, shuffle=True)
-                for k, d in enumerate(["frame", *dims]):
-                    ds.dims[k].attach_scale(scales[d])
-                for k, v in attrs.items():
-                    ds.attrs[k] = _attr(k, v, arr.dtype)
-                if aux:
-                    ds.attrs["coordinates"] = aux
-                fields[name] = ds
-        for i, ref in enumerate(frames.frames):
-            meta, arrays = source.get(i)
-            rec = _frame_record(i, ref, float(frames.time_s[i]), meta)
-            records.append(rec)
-            ok = rec["status"] == STATUS_OK
-            for name, ds in fields.items():
-                arr = arrays.get(f"v__{name}") if ok else None
-                if arr is None:
-                    if ok:  # an ok frame without this field: cannot happen with one experiment
-                        raise DataFileError(f"frame {i} has no {name!r}; rerun with --restart")
-                    fill = (1 if name == "invalid" else 0) if ds.dtype.kind in "iub" else np.nan
-                    arr = np.full(ds.shape[1:], fill, dtype=ds.dtype)
-                ds[i] = arr
-        _frame_variables(h5, records, scales["frame"], frames)
-        attrs: dict[str, Any] = dict(template[0].get("attrs", {})) if template is not None else {}
-        provenance = {k: v for k, v in attrs.items()
-                      if k not in ("inputs", "input_sha256", "input_info", "summary")}
-        flat, json_keys = _flatten({
-            **provenance,
-            "title": "BOS series",
-            "Conventions": "CF-1.8",
-            "coordinate_note": getattr(output, "COORDINATE_NOTE", None) or output.Y_DOWN_NOTE,
-            "batch": {"frames": n, "reference_mode": spec.mode,
-                      "reference_files": [f.name for f in spec.frames],
-                      "time_source": frames.time_source, "executor": executor,
-                      "warnings": list(warnings)},
-        })
-        for k, v in flat.items():
-            h5.attrs[k] = v
-        h5.attrs["bos_json_attributes"] = json.dumps(json_keys)
-        h5.attrs["bos_file_format"] = SERIES_FORMAT
-        h5.attrs["batch_settings_sha256"] = digest
-        h5.attrs["batch_field_variables"] = json.dumps(list(fields))
-        h5.attrs["batch_provenance"] = json.dumps(provenance, allow_nan=True, default=str)
-        h5.flush()
+    proc, rec = gattrs.get("processing") or {}, gattrs.get("reconstruction") or {}
+    gattrs.update({
+        "title": f"BOS series {exp.output.name}",
+        "Conventions": "CF-1.8",
+        "source": (f"background-oriented schlieren series processed with bos-toolkit {bos.__version__} (bos batch, "
+                   f"{n} frames, reference: {spec.mode}; displacement: {proc.get('method', 'correlation')}; "
+                   f"reconstruction: {rec.get('kind', 'none')})"),
+        "references": output._references(gattrs),
+        "experiment_file_text": output._experiment_text(exp),
+        "coordinate_note": output.COORDINATE_NOTE,
+        "run_name": exp.output.name,
+        "batch": {"frames": n, "reference_mode": spec.mode, "reference_files": [f.name for f in spec.frames],
+                  "time_source": frames.time_source, "executor": executor, "warnings": list(warnings)},
+        "bos_file_format": SERIES_FORMAT,
+        "batch_settings_sha256": digest,
+        "batch_field_variables": json.dumps(fields),
+        "batch_provenance": json.dumps(provenance, allow_nan=True, default=str),
+    })
+
+    def fill(write) -> None:
+        for i, rec in enumerate(records):
+            if rec["status"] != STATUS_OK:
+                for name in fields:
+                    dtype = np.dtype(variables[name]["dtype"])
+                    write(name, i, np.full(variables[name]["shape"][1:], (1 if name == "invalid" else 0)
+                                           if dtype.kind in "iub" else np.nan, dtype=dtype))
+                continue
+            _, arrays = source.get(i)
+            for name in fields:
+                if f"v__{name}" not in arrays:  # an ok frame without this field: cannot happen with one experiment
+                    raise DataFileError(f"frame {i} has no {name!r}; rerun with --restart")
+                write(name, i, arrays[f"v__{name}"])
+
+    store.write_result(tmp, coords=coords, variables=variables, attrs=gattrs, fill=fill,
+                       history=f"bos batch from {exp.source_file or 'command-line options'} ({n} frames, {executor})")
     with open(tmp, "rb+") as fh:
         os.fsync(fh.fileno())
     return records
 
 
-def _frame_variables(h5, records: list[dict], frame_scale, frames: FrameSet) -> None:
-    import h5py
+#: What a pixel count in the series file carries (CF units "1": UDUNITS and pint read "px" as something else).
+_PX_ATTRS = {"units": "1", "display_units": "px",
+             "comment": "count of image pixels (dimensionless, CF units '1'; display unit px), along the image "
+                        "rows (down) or columns (right) as the name says"}
 
-    def put(name, data, attrs, dtype=None):
-        ds = h5.create_dataset(name, data=np.asarray(data, dtype=dtype) if dtype is not h5py.string_dtype()
-                               else np.array(data, dtype=object), dtype=dtype)
-        ds.dims[0].attach_scale(frame_scale)
-        for k, v in attrs.items():
-            ds.attrs[k] = v
 
-    put("status", [r["status"] for r in records],
-        {"units": "1", "long_name": "processing status of the frame",
-         "flag_values": np.array(sorted(STATUS_NAMES), np.uint8),
-         "flag_meanings": " ".join(STATUS_NAMES[k] for k in sorted(STATUS_NAMES))}, np.uint8)
-    put("error", [r["error"] for r in records], {"units": "1", "long_name": "error message of a failed frame"},
-        h5py.string_dtype())
-    put("source_file", [r["source_file"] for r in records],
-        {"units": "1", "long_name": "file the frame was read from (#k: frame k inside it)"}, h5py.string_dtype())
-    put("source_frame", [r["source_frame"] for r in records],
-        {"units": "1", "long_name": "frame index inside a video or multi-page file (-1: still image)"}, np.int64)
-    put("time", [r["time_s"] for r in records],
-        {"units": "s", "long_name": "time of the frame from the first frame",
-         "source": frames.time_source}, np.float64)
+def _frame_variables(records: list[dict], frames: FrameSet) -> dict[str, Any]:
+    """Per-frame variables of the series (dimension ``frame``)."""
+    def var(data, attrs, dtype=None):
+        return {"dims": ("frame",), "data": np.asarray(data, dtype=dtype), "attrs": attrs}
+
+    out = {
+        "status": var([r["status"] for r in records], {
+            "units": "1", "long_name": "processing status of the frame",
+            "flag_values": np.array(sorted(STATUS_NAMES), np.int8),
+            "flag_meanings": " ".join(STATUS_NAMES[k] for k in sorted(STATUS_NAMES))}, np.int8),
+        "error": var([r["error"] for r in records], {"long_name": "error message of a failed frame"}, str),
+        "source_file": var([r["source_file"] for r in records],
+                           {"long_name": "file the frame was read from (#k: frame k inside it)"}, str),
+        "source_frame": var([r["source_frame"] for r in records], {
+            "units": "1", "long_name": "frame index inside a video or multi-page file (-1: still image)"}, np.int64),
+        "time": var([r["time_s"] for r in records], {"units": "s", "long_name": "time of the frame from the first "
+                                                     "frame", "source": frames.time_source}, np.float64),
+    }
     for col, _, units, long_name in FRAME_COLUMNS:
-        put(col, [r[col] for r in records], {"units": units, "long_name": long_name}, np.float64)
+        attrs = {**_PX_ATTRS, "long_name": long_name} if units == "px" else {"units": units, "long_name": long_name}
+        out[col] = var([r[col] for r in records], attrs, np.float64)
+    return out
 
 
 def _write_table(path: Path, records: list[dict]) -> None:

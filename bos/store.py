@@ -36,6 +36,7 @@ from .errors import DataFileError, InputError
 
 __all__ = [
     "FORMAT_NAME",
+    "SERIES_FORMAT_NAME",
     "CF_STANDARD_NAMES",
     "MAX_READ_BYTES",
     "Variable",
@@ -57,6 +58,9 @@ __all__ = [
 
 #: Value of the global ``bos_file_format`` attribute that marks a result file.
 FORMAT_NAME = "bos-toolkit result 2"
+#: ``bos_file_format`` of a series file (``bos batch``): same encoding, a ``frame`` dimension in front.
+SERIES_FORMAT_NAME = "bos-toolkit series 2"
+_FORMATS = (FORMAT_NAME, SERIES_FORMAT_NAME)
 #: Earlier format (nested attributes flattened to dotted names, y down, .h5); still read.
 _OLD_FORMATS = ("bos-toolkit result 1",)
 _JSON_LIST_ATTR = "bos_json_attributes"
@@ -324,6 +328,8 @@ def write_result(
         stored as they are; anything else (nested dictionaries, lists of
         strings, booleans, None) as JSON text (non-finite numbers become
         ``null``), named in the attribute ``bos_json_attributes``.
+        ``bos_file_format`` is :data:`FORMAT_NAME` unless ``attrs`` names
+        :data:`SERIES_FORMAT_NAME`.
     history : str
         What made the file: added, with a UTC time stamp and the software
         version, as the first line of the CF ``history`` attribute (earlier
@@ -384,7 +390,8 @@ def write_result(
     if isinstance(old_history, str) and old_history.strip():
         history += "\n" + old_history
     given["history"] = history
-    given["bos_file_format"] = FORMAT_NAME
+    if given.get("bos_file_format") not in _FORMATS:
+        given["bos_file_format"] = FORMAT_NAME
     given.setdefault("Conventions", "CF-1.8")
     flat, json_keys = _encode_global(given)
     if json_keys:
@@ -394,8 +401,9 @@ def write_result(
         kw: dict[str, Any] = {}
         if var.data.ndim >= 1 and var.data.size >= 4096:
             kw = {"compression": "gzip", "compression_opts": 4, "shuffle": True, "chunks": True}
-        if _is_placeholder(var.data):
-            kw.update(chunks=(1, *var.data.shape[1:]), dtype=var.data.dtype)
+        if _is_placeholder(var.data):  # filled later, one index of the first dimension at a time
+            kw = {"compression": "gzip", "compression_opts": 4, "shuffle": True,
+                  "chunks": (1, *var.data.shape[1:]), "dtype": var.data.dtype}
             v = nc.create_variable(name, var.dims, **kw)
         else:
             v = nc.create_variable(name, var.dims, data=var.data, **kw)
@@ -496,7 +504,7 @@ def _open_h5(p: Path, max_bytes: int):
     h5 = h5py.File(p, "r")
     try:
         fmt = _attr_value(h5.attrs.get("bos_file_format"))
-        if fmt != FORMAT_NAME and fmt not in _OLD_FORMATS:
+        if fmt not in _FORMATS and fmt not in _OLD_FORMATS:
             raise DataFileError(f"{p} is not a bos result file (no bos_file_format = {FORMAT_NAME!r})")
         check_result_file(h5, p, max_bytes=max_bytes)
     except BaseException:

@@ -6,7 +6,8 @@ Outside sources of the checks:
   displacement per frame, so the recovered displacement is checked against
   that analytic value;
 * the series file is opened with xarray + h5netcdf (general-purpose netCDF4 /
-  HDF5 readers), the table with the standard csv module;
+  HDF5 readers) and checked with the CF conventions checker cfchecks (CF 1.8,
+  UDUNITS-2; skipped where missing), the table with the standard csv module;
 * the averaged reference is checked against numpy's mean of the images read
   with imageio;
 * the Dask run uses dask.distributed's LocalCluster (a general-purpose
@@ -16,6 +17,7 @@ Outside sources of the checks:
 from __future__ import annotations
 
 import csv
+import json
 from pathlib import Path
 
 import numpy as np
@@ -176,8 +178,9 @@ def test_series_layout_and_known_displacement(seq, serial_run):
         assert dx.dims == ("frame", "y", "x")
         assert dx.encoding["chunksizes"] == (1,) + dx.shape[1:]   # one frame per chunk
         assert dx.encoding["zlib"] and dx.encoding["shuffle"]      # compressed
-        assert all(ds[v].attrs.get("units") for v in ds.data_vars)  # same attrs as bos run: next test
-        assert ds.attrs["bos_file_format"] == "bos-toolkit series 1"
+        # same attrs as bos run (next test); text (error, source_file: CF character arrays) has no units
+        assert all(ds[v].attrs.get("units") for v in ds.data_vars if v not in ("error", "source_file"))
+        assert ds.attrs["bos_file_format"] == "bos-toolkit series 2"
         for k in range(N_FRAMES):
             dy_true, dx_true = shift(k)
             # analytic uniform shift of the forward model; 0.02 px covers the estimator bias at 16 px windows
@@ -282,7 +285,7 @@ def test_reference_frames_averaged(tmp_path):
     rep = run_batch(exp, resolve_frames(d / "frames"), reference_frames=refs, workers=1)
     assert rep.done == 3
     with open_series(rep.series_file) as ds:
-        assert ds.attrs["batch.reference_mode"] == "average"
+        assert json.loads(ds.attrs["batch"])["reference_mode"] == "average"
         for k in range(3):
             assert float(ds["displacement_x"][k].median()) == pytest.approx(shift(k)[1], abs=0.02)
 
@@ -328,6 +331,24 @@ def test_corrupt_frame_is_recorded_and_skipped(tmp_path):
         assert np.all(np.isnan(ds["temperature"][1].values)) and np.all(ds["invalid"][1].values == 1)
         assert "cannot read image" in str(ds["error"][1].values)
         assert np.isfinite(ds["temperature"][2].values).any()
+    # the series file follows the result-file conventions (docs/file-format.md): CF 1.8, y up, pixel counts
+    # in units "1", flags as signed bytes, text as character arrays, provenance as JSON attributes
+    from bos.store import open_result
+
+    ds = open_result(rep.series_file)
+    a = ds.attrs
+    assert a["Conventions"] == "CF-1.8" and a["history"][:4].isdigit() and "bos batch from" in a["history"]
+    assert "series" in a["source"] and "Richard, H. and Raffel, M. (2001)" in a["references"]
+    assert a["experiment_file_text"] == (d / "exp-corrupt.toml").read_text()
+    assert not [k for k in a if "." in k] and a["batch"]["frames"] == 3 and isinstance(a["rig"], dict)
+    assert np.all(np.diff(ds.y.values) < 0) and np.all(np.diff(ds.row_px.values) > 0)  # y up, rows down
+    assert ds.camera_shift_x_px.attrs["units"] == "1" and ds.camera_shift_x_px.attrs["display_units"] == "px"
+    assert ds.masked.dtype == bool and list(ds.invalid[1].values.ravel()) == [True] * ds.invalid[1].size
+    assert list(ds.source_file.values) == ["f000.png", "f001.png", "f002.png"]
+    assert ds.error.values[0] == "" and "cannot read image" in ds.error.values[1]
+    from test_cf_compliance import assert_cfchecks_clean
+
+    assert_cfchecks_clean([rep.series_file], tmp_path)
 
 
 def test_rerun_reuses_finished_series_and_refuses_other_settings(seq, serial_run, tmp_path):
@@ -372,6 +393,10 @@ def test_unfinished_batch_resumes_and_refuses_other_settings(tmp_path):
     parts = d / "unfinished" / ".seq-series.parts"
     assert len(list(parts.glob("frame-*.npz"))) == 2 and not (d / "unfinished" / "seq-series.nc").exists()
     (parts / ".frame-000002.abc.npz.part.npz").write_bytes(b"half")  # left by a kill during a write
+    # left by a kill while the series was written (its temporary file, and the one bos.store makes beside it)
+    stale = [d / "unfinished" / ".seq-series.ab.nc.part.nc", d / "unfinished" / "..seq-series.ab.nc.part.cd.nc.part.nc"]
+    for f in stale:
+        f.write_bytes(b"half")
     other = load_experiment(exp_path, overrides={"processing.overlap": 0.25})
     with pytest.raises(InputError, match=r"unfinished batch.*2 frame\(s\) done.*processing.*--restart"):
         run_batch(other, frames, workers=1)
@@ -381,6 +406,6 @@ def test_unfinished_batch_resumes_and_refuses_other_settings(tmp_path):
     raw[len(raw) // 2: len(raw) // 2 + 64] = b"\0" * 64
     part.write_bytes(bytes(raw))
     rep = run_batch(load_experiment(exp_path), frames, workers=1)
-    assert rep.done == 4 and not parts.exists()
+    assert rep.done == 4 and not parts.exists() and not any(f.exists() for f in stale)
     full = run_batch(load_experiment(write_experiment(d, "uninterrupted")), frames, workers=1)
     assert_same_series(full.series_file, rep.series_file)
