@@ -94,6 +94,13 @@ def render_frames(n: int) -> Path:
     return d
 
 
+def _cpu_seconds() -> float:
+    import resource
+
+    return sum(r.ru_utime + r.ru_stime for r in (resource.getrusage(resource.RUSAGE_SELF),
+                                                 resource.getrusage(resource.RUSAGE_CHILDREN)))
+
+
 def run(label: str, d: Path, work: Path, n: int, *, threads: int | None = None, **kwargs) -> dict:
     """One batch of n frames; frame rate overall and in the steady state (first frames excluded)."""
     from bos.batch import apply_thread_budget, run_batch
@@ -112,9 +119,12 @@ def run(label: str, d: Path, work: Path, n: int, *, threads: int | None = None, 
         if outcome is not None:
             stamps.append(time.perf_counter())
 
+    cpu0 = _cpu_seconds()
     t0 = time.perf_counter()
     rep = run_batch(load_experiment(exp_file), frames, restart=True, progress=progress, **kwargs)
     wall = time.perf_counter() - t0
+    # CPU time of this process and its finished worker processes (Dask workers are not counted)
+    cpu_per_frame = (_cpu_seconds() - cpu0) / max(1, rep.computed)
     w = max(1, len(rep.peak_rss_bytes))
     # steady state: from the w-th finished frame on (pool start-up and the first frames excluded)
     steady = (len(stamps) - w) / (stamps[-1] - stamps[w - 1]) if len(stamps) > w else float("nan")
@@ -123,7 +133,8 @@ def run(label: str, d: Path, work: Path, n: int, *, threads: int | None = None, 
            "failed": len(rep.failed), "rss_gb": rss / 1e9, "workers": len(rep.peak_rss_bytes)}
     print(f"  {label:26s} {row['fps']:6.3f} frames/s overall (wall {wall:6.1f} s incl. start-up and join), "
           f"{steady:6.3f} frames/s steady; failed {row['failed']}; peak RSS per worker {row['rss_gb']:.2f} GB "
-          f"({row['workers']} process(es)); load {os.getloadavg()[0]:.1f}", flush=True)
+          f"({row['workers']} process(es)); CPU {cpu_per_frame:.2f} s/frame"
+          f"{' (scheduler side only)' if 'scheduler' in kwargs else ''}; load {os.getloadavg()[0]:.1f}", flush=True)
     return row
 
 
