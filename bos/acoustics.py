@@ -70,7 +70,7 @@ def acoustic_field(density, *, medium, sigma_density=None) -> AcousticField:
     References
     ----------
     Linear acoustics, p' = c^2 rho' and T' = ((gamma-1)/gamma) T p'/p0
-    (references.md section 7).
+    (textbook relations, from memory; no specific source).
     """
     from .media import pressure_to_spl
 

@@ -1,6 +1,8 @@
 """Acoustic conversion of a reconstructed density field.
 
-Outside source: references.md section 7 amplitude table [C] (20 degC dry air,
+Outside source: acoustic amplitude check values computed outside the project
+with numpy/CoolProp 8.0.0 from linear acoustics (textbook relations, from
+memory) (20 degC dry air,
 rho0 = 1.20458 kg/m^3): 140 dB -> p_pk 283 Pa, rho'_pk 2.40e-3 kg/m^3,
 T'_pk 0.234 K; 120 dB -> 28.3 Pa, 2.40e-4 kg/m^3, 0.0234 K.
 """
@@ -32,7 +34,7 @@ def test_uncertainty_is_linear_and_nan_passes_through():
     rho = np.array([[AIR.ambient_density, np.nan]])
     sig = np.array([[1e-4, 1e-4]])
     out = acoustic_field(rho, medium=AIR, sigma_density=sig)
-    # p' = c^2 rho' (references.md section 7): the same factor applies to sigma
+    # p' = c^2 rho' (linear acoustics, from memory): the same factor applies to sigma
     assert out.sigma_pressure_pa[0, 0] == pytest.approx(AIR.speed_of_sound**2 * 1e-4, rel=1e-12)
     assert out.pressure_pa[0, 0] == pytest.approx(0.0, abs=1e-9)
     assert np.isnan(out.pressure_pa[0, 1])

@@ -91,7 +91,7 @@ def test_uniform_rendered_shifts_peak_locking():
 
 def _blob_field(amp, n, s):
     """d = -k (y, x) exp(-r^2/s^2), the form of a Gaussian index blob's deflection
-    (references.md sec. 3 [C]); |d| peaks at r = s/sqrt(2) with value ``amp``."""
+    (closed form, see bos.synthetic.gaussian_blob_deflection); |d| peaks at r = s/sqrt(2) with value ``amp``."""
 
     def f(rows, cols):
         y = (rows - (n - 1) / 2) / s
@@ -231,7 +231,7 @@ def test_camera_motion_removal_recovers_global_shift():
 @pytest.mark.parametrize("shift", [(25.0, -6.0), (-4.0, 17.3)])
 def test_large_camera_shift_removed_before_the_local_estimate(shift):
     # Source: exact analytic rendering (bos.synthetic) of a hot-column field
-    # (analytic Gaussian-column deflection, references.md sec. 5 [C]) seen
+    # (analytic Gaussian-column deflection from the closed-form Abel pair) seen
     # through a camera shifted by far more than a quarter of the first window
     # (64 px): only the coarse pre-estimate of the shift lets the windows
     # follow.  The total shift must come back within 0.01 px (issue 3) and the
@@ -289,7 +289,8 @@ def test_mask_and_invalid_are_separate():
 
 
 def test_normalized_median_test_hand_computed():
-    # Source: Westerweel & Scarano 2005 (references.md sec. 8 [D]); values
+    # Source: Westerweel & Scarano (2005), "Universal outlier detection for PIV data",
+    # Exp. Fluids 39:1096 (eps = 0.1 px, threshold 2); values
     # computed by hand for the centre of a 3x3 block.
     u = np.array([[1.0, 1.1, 0.9], [1.0, 2.0, 1.2], [0.8, 1.0, 1.1]])
     # neighbours: 1.0 1.1 0.9 1.0 1.2 0.8 1.0 1.1 -> median 1.0;

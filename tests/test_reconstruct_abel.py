@@ -1,9 +1,9 @@
 """Derivative-form Abel inversion (bos.reconstruct.abel).
 
-Outside sources: the analytic Abel pairs of references.md section 5 [C]
-(quadrature-verified there), PyAbel 0.9.1's Dasch three-point and
-onion-peeling inversions run here on the projections (references.md section 5
-table [C]), scipy quad for the inverse of a profile cut by the window, and numpy random
+Outside sources: closed-form Abel pairs (standard integrals, verified by
+quadrature), PyAbel 0.9.1's Dasch (1992, Appl. Opt. 31:1146) three-point and
+onion-peeling inversions run here on the projections (their errors on these
+pairs, measured with PyAbel 0.9.1, are tabulated below), scipy quad for the inverse of a profile cut by the window, and numpy random
 sampling for the Monte Carlo checks.
 """
 
@@ -21,7 +21,7 @@ def _abel():
     """PyAbel, an optional test oracle: the tests that use it skip without it."""
     return pytest.importorskip("abel")
 
-N, DR = 201, 0.005  # references.md section 5 table: n = 201 samples on [0, 1]
+N, DR = 201, 0.005  # PyAbel accuracy table below: n = 201 samples on [0, 1]
 R = np.arange(N) * DR
 INNER = R < 0.9
 
@@ -32,7 +32,7 @@ def max_err(name, method):
 
 
 # PyAbel's Dasch three-point on the exact projection F vs ours on eps = F' (same 201 samples).
-# table: references.md section 5 table [C] (sqrt(1 - r^2) is not in it; PyAbel measured here: 1.87e-5).
+# table: PyAbel 0.9.1 error measured outside the project (sqrt(1 - r^2) is not in it; PyAbel measured here: 1.87e-5).
 # ours, measured: Gaussian 4.3e-5, (1-r^2)^2 8.6e-6, 1-r^2 8.2e-6 (2.1e-4 before the edge model),
 # sqrt(1-r^2) 5e-15 (7.1e-4 before; eps is linear with a jump at the last sample, which the edge model
 # represents exactly).  The uniform disk is left out: its eps = -2y/sqrt(1-y^2) is infinite at the edge.
@@ -43,7 +43,7 @@ def test_three_point_no_worse_than_pyabel(name, table):
     pyabel = _abel().dasch.three_point_transform(F, basis_dir=None, dr=DR)
     err_pyabel = np.abs(pyabel - f)[INNER].max()
     if table is not None:
-        assert err_pyabel == pytest.approx(table, rel=0.02)  # the table value of references.md section 5
+        assert err_pyabel == pytest.approx(table, rel=0.02)  # the previously measured PyAbel 0.9.1 value
     ours = abel_invert_deflection(dF, dr_m=DR, method="three_point")
     assert np.abs(ours - f)[INNER].max() <= 0.7 * err_pyabel
     assert np.abs(ours - pyabel)[INNER].max() <= 2 * err_pyabel  # the two agree on the same data
@@ -51,7 +51,7 @@ def test_three_point_no_worse_than_pyabel(name, table):
 
 @pytest.mark.parametrize("name, table", [("gaussian", 4.70e-4), ("quartic", 1.32e-4)])
 def test_onion_peeling_no_worse_than_pyabel_onion_peeling(name, table):
-    # table: PyAbel's Dasch onion peeling on the projection (references.md section 5)
+    # table: PyAbel 0.9.1's Dasch onion peeling on the projection (measured outside the project)
     assert max_err(name, "onion_peeling") <= table
 
 
@@ -63,7 +63,7 @@ def test_onion_peeling_on_pairs_with_non_smooth_edge():
 
 def test_edge_model_on_a_profile_cut_by_the_window():
     # Gaussian s = 0.7 cut at y = 1 (eps jumps to 0 there): the inverse of the cut data is
-    # f(r) + (1/pi) int_1^inf F'(y) dy / sqrt(y^2 - r^2) (references.md section 5), the tail by scipy quad.
+    # f(r) + (1/pi) int_1^inf F'(y) dy / sqrt(y^2 - r^2) (inverse Abel transform), the tail by scipy quad.
     # measured: 8.9e-6 with the edge model, 1.45e-4 without
     f, F, dF = ABEL_PAIRS["gaussian"](R, s=0.7)
     tail = [integrate.quad(lambda y, r=r: ABEL_PAIRS["gaussian"](y, s=0.7)[2] / np.sqrt(y * y - r * r),
@@ -97,7 +97,7 @@ def test_three_point_second_order_on_gaussian():
 
 
 def test_bos_form_scales_with_n0_and_ignores_dr():
-    # n - n0 = -(n0/pi) int eps dy / sqrt(y^2 - r^2): eps = F'/n0 (references.md section 5)
+    # n - n0 = -(n0/pi) int eps dy / sqrt(y^2 - r^2): eps = F'/n0 (BOS form of the inverse Abel transform)
     f, F, dF = ABEL_PAIRS["gaussian"](R, s=0.3)
     n0 = 1.000293
     out = abel_invert_deflection(dF / n0, dr_m=7.3, n0=n0)

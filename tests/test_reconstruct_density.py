@@ -1,9 +1,11 @@
 """Deflection geometry and density/temperature reconstruction (bos.reconstruct.deflection, .density).
 
-Outside sources: references.md Table 3.1 [C] (sensitivity and eps_min),
+Outside sources: BOS geometry check values computed with numpy from Raffel
+(2015), Exp. Fluids 56:60 and Exp. Fluids (2019) doi:10.1007/s00348-019-2865-4,
+Eq. 1 (TABLE_3_1 in test_optics.py: sensitivity and eps_min),
 analytic profiles (Gaussian temperature column, Gaussian planar layer) pushed
-through the forward model of bos.synthetic (quadrature of references.md
-section 5 / section 3 relations), a ray-equation trace written here from
+through the forward model of bos.synthetic (quadrature of the forward Abel
+transform and of eps = (1/n0) int grad n dz), a ray-equation trace written here from
 first principles (numpy), and numpy Monte Carlo for the uncertainty.
 """
 
@@ -21,7 +23,7 @@ AIR = Medium()
 
 
 def test_table_3_1_deflection_per_displacement():
-    # references.md Table 3.1 [C]: f 50 mm, Z_A 1 m, Z_D 0.5 m, 5 um pixels: eps_min at 0.1 px = 29.0 urad
+    # TABLE_3_1 row 1 (test_optics.py, computed): f 50 mm, Z_A 1 m, Z_D 0.5 m, 5 um pixels: eps_min at 0.1 px = 29.0 urad
     rig = Rig(focal_length_m=0.05, pixel_pitch_m=5e-6, f_number=8, z_a_m=1.0, z_d_m=0.5)
     ey, ex = deflection_from_displacement(np.array([0.1]), np.array([-0.02]), rig=rig)
     assert ey[0] == pytest.approx(-29.0e-6, rel=2e-3)  # minus: d = -(M Z_D / pitch) eps

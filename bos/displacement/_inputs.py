@@ -9,7 +9,7 @@ from ..errors import InputError, NoTextureError
 # Lag-one neighbour correlation below which an image is treated as pixel noise
 # only.  Independent pixel noise gives 0 +- 1/sqrt(N); a background of dots of
 # >= 1 px imaged through a lens gives > 0.3 (common practice: dots of 2-3 px,
-# references.md section 3 [M]).
+# Raffel et al. 2018, PIV -- A Practical Guide, 3rd ed.; from memory).
 NOISE_CORRELATION = 0.15
 # Fraction of pixels sitting at the clip level above which an image counts as
 # saturated (or black) rather than textured.

@@ -1,13 +1,14 @@
 """Analytic test pairs shipped with the library (for tests, benchmarks, users).
 
-Abel pairs (references.md section 5, each checked there by quadrature [C]):
+Abel pairs (closed-form integrals, each checked by quadrature):
 every entry of :data:`ABEL_PAIRS` maps a name to a function
 ``pair(r_or_y, R=1.0, s=0.3) -> (f(r), F(y), dF/dy(y))`` evaluated on the
 same coordinate array, where ``F`` is the forward Abel transform
 ``F(y) = 2 int_y^R f(r) r dr / sqrt(r^2 - y^2)`` and ``dF/dy`` is what a BOS
 deflection measures (``eps = F'/n0`` for ``f = n - n0``).
 
-Poisson pair: :func:`gaussian_potential` (references.md section 6).
+Poisson pair: :func:`gaussian_potential` (a Gaussian with its analytic
+gradient: a manufactured solution for the Poisson tests).
 """
 
 from __future__ import annotations

@@ -1,6 +1,7 @@
 """Displacement -> deflection -> index gradient: rig geometry and ray obliquity.
 
-Paraxial model (docs/architecture.md, references.md section 3):
+Paraxial model (docs/architecture.md; Exp. Fluids (2019)
+doi:10.1007/s00348-019-2865-4, Eq. 1; Raffel (2015), Exp. Fluids 56:60):
 
     d_px = -(M Z_D / pixel_pitch) eps,   M = f / (Z_B - f)
 
@@ -69,8 +70,8 @@ def deflection_from_displacement(dy_px, dx_px, *, rig, ray_slopes=None, rows_px=
 
     References
     ----------
-    references.md section 3 (Exp. Fluids 2019 doi:10.1007/s00348-019-2865-4,
-    Eq. 1 [D]); sign: docs/architecture.md.
+    Exp. Fluids (2019) doi:10.1007/s00348-019-2865-4, Eq. 1; Raffel (2015),
+    Exp. Fluids 56:60; sign: docs/architecture.md.
     """
     dy, dx = _arrays(dy_px, dx_px)
     if (rows_px is None) != (cols_px is None):
@@ -121,7 +122,8 @@ def obliquity_error(*, rig, shape) -> float:
 def planar_index_gradient(eps_y, eps_x, *, width_m: float, n0: float, ray_slopes=None):
     """Refractive-index gradient (dn/dy, dn/dx) [1/m] of a planar object of width W.
 
-    ``grad n = n0 eps / W`` (references.md section 3); with ``ray_slopes``
+    ``grad n = n0 eps / W`` (planar form of eps = (1/n0) int grad n dz, Exp.
+    Fluids 2019 Eq. 1); with ``ray_slopes``
     the oblique chord is accounted for: grad n = (n0 / (W c)) (I + t t^T) eps.
 
     Parameters

@@ -167,7 +167,10 @@ def planar_density(eps_y, eps_x, *, spacing_m, width_m: float, medium, reference
 
     References
     ----------
-    references.md sections 3 (grad rho = n0 eps / (K W)) and 6 (Poisson).
+    grad rho = n0 eps / (K W) from eps = (1/n0) int grad n dz (Exp. Fluids
+    (2019) doi:10.1007/s00348-019-2865-4, Eq. 1) and n - 1 = K rho; Poisson
+    integration: Simchony, Chellappa & Shao (1990), IEEE TPAMI 12:435 and
+    Southwell (1980), JOSA 70:998 (both from memory).
     """
     ey, ex, masked, invalid, sy, sx = _inputs(eps_y, eps_x, masked, invalid, sigma_y, sigma_x)
     if reference_region is None and not dirichlet:
@@ -239,7 +242,8 @@ def axisymmetric_density(eps_y, eps_x, *, spacing_m: float, medium, axis: str = 
 
     References
     ----------
-    Dasch (1992), Appl. Opt. 31:1146; references.md section 5.
+    Dasch (1992), "One-dimensional tomography: a comparison of Abel,
+    onion-peeling, and filtered backprojection methods", Appl. Opt. 31:1146.
     """
     ey, ex, masked, invalid, sy, sx = _inputs(eps_y, eps_x, masked, invalid, sigma_y, sigma_x)
     if axis not in ("vertical", "horizontal"):

@@ -38,7 +38,7 @@ Strang (1999), SIAM Rev. 41:135 (the discrete cosine transform) [M].
 Southwell (1980), JOSA 70:998 (zonal least squares from slopes) [M].
 Harker & O'Leary (2008, 2015) (global least-squares integration) [M].
 Braess (1995), Computing 55:379 (aggregation multigrid with over-correction) [M].
-references.md section 6.
+[M]: cited from memory, not checked against the original.
 """
 
 from __future__ import annotations
@@ -675,7 +675,7 @@ def integrate_gradient(
     References
     ----------
     Simchony, Chellappa & Shao (1990), IEEE TPAMI 12:435; Southwell (1980),
-    JOSA 70:998; references.md section 6.
+    JOSA 70:998 (both from memory).
     """
     pb, solve = _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, method)
     _region(reference_region, pb.shape)  # validate before solving

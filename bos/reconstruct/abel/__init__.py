@@ -6,7 +6,8 @@ n - n0, so the inverse Abel transform needs no numerical differentiation:
 
     n(r) - n0 = -(n0/pi) int_r^inf eps(y) dy / sqrt(y^2 - r^2)
 
-(references.md section 5).  Each method is a linear operator D (one
+(the BOS form of the inverse Abel transform, Dasch 1992, with eps = F'/n0;
+checked numerically).  Each method is a linear operator D (one
 ``(m, m)`` matrix for ``m`` samples at y_j = j*dr, j = 0 at the axis) with
 ``(n - n0)/n0 = D @ eps``; the registry :data:`METHODS` maps names to the
 functions that build D:
@@ -33,7 +34,6 @@ References
 ----------
 Dasch (1992), "One-dimensional tomography: a comparison of Abel,
 onion-peeling, and filtered backprojection methods", Appl. Opt. 31:1146.
-references.md section 5.
 """
 
 from .field import AbelResult, abel_invert_field, find_symmetry_axis, symmetry_residual

@@ -2,7 +2,9 @@
 
 References
 ----------
-Dasch (1992), Appl. Opt. 31:1146 (onion peeling); references.md section 5.
+Dasch (1992), "One-dimensional tomography: a comparison of Abel,
+onion-peeling, and filtered backprojection methods", Appl. Opt. 31:1146
+(onion peeling).
 """
 
 from __future__ import annotations

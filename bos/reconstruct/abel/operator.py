@@ -69,7 +69,8 @@ def abel_invert_deflection(eps, *, dr_m: float, method: str = "three_point",
 
     References
     ----------
-    Dasch (1992), Appl. Opt. 31:1146; references.md section 5.
+    Dasch (1992), "One-dimensional tomography: a comparison of Abel,
+    onion-peeling, and filtered backprojection methods", Appl. Opt. 31:1146.
     """
     eps = np.asarray(eps, dtype=float)
     if not (np.isfinite(dr_m) and dr_m > 0):
