@@ -426,15 +426,29 @@ def _local_pool(tasks: list[FrameTask], workers: int, threads: int, ctx) -> Iter
 
 
 def _stop_pool(pool) -> None:
-    """Stop a process pool now (Ctrl-C or a broken pool): cancel queued work, end the workers."""
-    procs = list((getattr(pool, "_processes", None) or {}).values())
+    """Stop a process pool now (Ctrl-C or a broken pool): cancel queued work, end the workers.
+
+    The pool starts its processes on demand (from its manager thread), so the
+    process list is read again after the shutdown request and every process
+    seen is terminated and joined.
+    """
+    seen: dict[int, Any] = {}
+
+    def collect() -> None:
+        for p in list((getattr(pool, "_processes", None) or {}).values()):
+            seen.setdefault(id(p), p)
+
+    collect()
     pool.shutdown(wait=False, cancel_futures=True)
-    for p in procs:
-        with contextlib.suppress(Exception):
-            p.terminate()
-    for p in procs:
-        with contextlib.suppress(Exception):
-            p.join(5)
+    collect()
+    for _ in range(2):
+        for p in list(seen.values()):
+            with contextlib.suppress(Exception):
+                p.terminate()
+        for p in list(seen.values()):
+            with contextlib.suppress(Exception):
+                p.join(5)
+        collect()
 
 
 def _dask_threads(client) -> dict[str, int]:
@@ -872,17 +886,25 @@ def _run_locked(exp, frames: FrameSet, spec: ReferenceSpec, paths, *, n, gas, wo
     all_warnings = list(warnings)
     t0 = time.perf_counter()
     computed = 0
-    for out in outcomes:
-        _write_part(parts / _part_name(out.index), out)
-        finished[out.index] = out.status
-        computed += 1
-        if out.worker:
-            rss[out.worker] = max(rss.get(out.worker, 0), out.peak_rss_bytes)
-        for w in out.warnings:
-            if w not in all_warnings and len(all_warnings) < 50:
-                all_warnings.append(w)
-        if progress is not None:
-            progress(len(finished), n, out)
+    try:
+        for out in outcomes:
+            _write_part(parts / _part_name(out.index), out)
+            finished[out.index] = out.status
+            computed += 1
+            if out.worker:
+                rss[out.worker] = max(rss.get(out.worker, 0), out.peak_rss_bytes)
+            for w in out.warnings:
+                if w not in all_warnings and len(all_warnings) < 50:
+                    all_warnings.append(w)
+            if progress is not None:
+                progress(len(finished), n, out)
+    finally:
+        # an interruption (Ctrl-C, SIGTERM) while this loop writes a part must stop the workers now:
+        # closing the executor generator runs its clean-up (pool stopped, workers terminated); left
+        # to the garbage collector, the pool's exit handler would wait for every frame in flight
+        close = getattr(outcomes, "close", None)
+        if close is not None:
+            close()
     seconds = time.perf_counter() - t0
     if computed == 0 and old_series is not None and not any(parts.glob("frame-*.npz")):
         records = _series_records(old_series, frames)  # finished earlier: nothing to rewrite

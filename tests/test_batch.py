@@ -409,3 +409,30 @@ def test_unfinished_batch_resumes_and_refuses_other_settings(tmp_path):
     assert rep.done == 4 and not parts.exists() and not any(f.exists() for f in stale)
     full = run_batch(load_experiment(write_experiment(d, "uninterrupted")), frames, workers=1)
     assert_same_series(full.series_file, rep.series_file)
+
+
+def test_interrupt_while_writing_a_part_stops_the_workers_at_once(seq, monkeypatch):
+    """Ctrl-C can land while the main process writes a finished frame: the worker processes must be
+    stopped then and there (not left computing the frames in flight until the interpreter exits)."""
+    import multiprocessing
+
+    from bos import batch
+
+    real = batch._write_part
+    calls = {"n": 0}
+
+    def interrupted(path, out):
+        calls["n"] += 1
+        real(path, out)
+        if calls["n"] == 1:
+            raise KeyboardInterrupt
+
+    monkeypatch.setattr(batch, "_write_part", interrupted)
+    exp = load_experiment(write_experiment(seq, "cut-in-write"))
+    with pytest.raises(KeyboardInterrupt):
+        run_batch(exp, resolve_frames(seq / "frames"), workers=2)
+    for child in multiprocessing.active_children():
+        child.join(10)
+    assert multiprocessing.active_children() == []
+    parts = list((seq / "cut-in-write").glob(".*.parts/frame-*.npz"))
+    assert len(parts) == 1                       # the frame written before the interruption is kept
