@@ -30,6 +30,7 @@ unreadable one -> ``DataFileError("cannot read image ...: <reason>")``.
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import warnings
@@ -359,7 +360,18 @@ def _read_raw(path: Path, frame: int | None):
 
 
 def _video_info(path: Path) -> tuple[int, bool]:
-    """(number of frames, lossy) of the first video stream, counted from packets if needed."""
+    """(number of frames, lossy) of the first video stream, counted from packets if needed.
+
+    Cached per file (path, size, modification time): containers without a
+    frame count (e.g. MKV) are counted by demuxing every packet, which a
+    frame-by-frame reader would otherwise repeat for every frame.
+    """
+    st = os.stat(path)
+    return _video_info_cached(str(Path(path).resolve()), st.st_size, st.st_mtime_ns)
+
+
+@functools.lru_cache(maxsize=64)
+def _video_info_cached(path: str, size: int, mtime_ns: int) -> tuple[int, bool]:  # noqa: ARG001 - cache keys
     import av
 
     with av.open(str(path)) as container:

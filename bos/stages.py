@@ -143,11 +143,11 @@ def load_inputs(exp: Experiment) -> Inputs:
     meas_frame = exp.images.measurement_frame if exp.images.measurement_frame is not None else frame
     with warnings_module.catch_warnings(record=True) as caught:
         warnings_module.simplefilter("always")
-        ref = images.read_image(ref_path, frame=ref_frame)
+        # both files decoded side by side (two threads; same errors and warnings as two reads)
+        ref, meas = images.read_pair(ref_path, meas_path, reference_frame=ref_frame, measurement_frame=meas_frame)
         if ref_path.resolve() == meas_path.resolve() and ref_frame == meas_frame and ref.n_frames > 1:
             raise ConfigError(f"reference and measurement are the same {ref.n_frames}-frame file {ref_path.name} "
                               "and no frames are chosen: set images.reference_frame and images.measurement_frame")
-        meas = images.read_image(meas_path, frame=meas_frame)
         images.check_pair(ref, meas)
         shape = ref.data.shape
         paths = {"reference": ref_path, "measurement": meas_path}
