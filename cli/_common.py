@@ -259,3 +259,17 @@ def strict_json(obj: Any) -> Any:
     if hasattr(obj, "__dataclass_fields__") or hasattr(obj, "__dict__"):
         return strict_json(dict(vars(obj)))
     return str(obj)
+
+
+def print_notes(console, *, warnings=(), cautions=(), files=()) -> None:
+    """Print warnings, safety cautions and written files after a command's table (rich console)."""
+    from rich.markup import escape
+
+    for w in warnings or ():
+        console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
+    for c in cautions or ():
+        console.print(f"[red]caution:[/] {escape(str(c))}", highlight=False)
+    if files:
+        console.print("written:", highlight=False)
+        for f in files:
+            console.print(f"  {escape(str(f))}", highlight=False, soft_wrap=True)

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import emit_json, handle_errors, print_notes
 
 
 def _line(text: str) -> tuple[float, float, float, float]:
@@ -54,7 +54,6 @@ def register(app: typer.Typer) -> None:
             emit_json(comp.stats())
             return
         from rich.console import Console
-        from rich.markup import escape
         from rich.table import Table
 
         st = comp.stats()
@@ -73,10 +72,5 @@ def register(app: typer.Typer) -> None:
         t.add_row("rms difference", f"{st['rms_difference_rad']:.4g}", "rad")
         t.add_row("bias", f"{st['bias_rad']:.4g}", "rad")
         console.print(t)
-        for w in comp.warnings:
-            console.print(f"[yellow]warning:[/] {escape(w)}", highlight=False)
-        if files:
-            console.print("written:", highlight=False)
-            for f in files:
-                console.print(f"  {escape(str(f))}", highlight=False, soft_wrap=True)
+        print_notes(console, warnings=comp.warnings, files=files)
         print_cautions(knife_edge_cautions(None))

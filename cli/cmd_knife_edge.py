@@ -7,7 +7,7 @@ from typing import Any, Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import emit_json, handle_errors, print_notes
 
 #: Light sources usual on knife-edge rigs (cautions shown when --illumination is not given).
 KNIFE_EDGE_SOURCES = ("strobe", "high-power-led", "arc-lamp")
@@ -103,7 +103,6 @@ def _calibration_plot(res, path: Path) -> Path:
 
 def _print_summary(summary: dict[str, Any], files: list[Path]) -> None:
     from rich.console import Console
-    from rich.markup import escape
     from rich.table import Table
 
     def num(v, fmt):
@@ -134,11 +133,7 @@ def _print_summary(summary: dict[str, Any], files: list[Path]) -> None:
     for r in rows:
         t.add_row(*r)
     console.print(t)
-    for w in summary.get("warnings") or []:
-        console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
-    console.print("written:", highlight=False)
-    for f in files:
-        console.print(f"  {escape(str(f))}", highlight=False, soft_wrap=True)
+    print_notes(console, warnings=summary.get("warnings"), files=files)
 
 
 def register(app: typer.Typer) -> None:

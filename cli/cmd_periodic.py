@@ -9,7 +9,7 @@ from typing import Any, Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import emit_json, handle_errors, print_notes
 
 
 def _frames(options: dict[str, Any], exp):
@@ -69,13 +69,7 @@ def _print(summary: dict[str, Any], cautions: list[str], files: list[Path]) -> N
     console.print(t)
     for n in summary.get("phase_notes") or []:
         console.print(f"note: {escape(n)}", highlight=False)
-    for w in summary.get("warnings") or []:
-        console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
-    for c in cautions:
-        console.print(f"[red]caution:[/] {escape(str(c))}", highlight=False)
-    console.print("written:", highlight=False)
-    for f in files:
-        console.print(f"  {escape(str(f))}", highlight=False, soft_wrap=True)
+    print_notes(console, warnings=summary.get("warnings"), cautions=cautions, files=files)
 
 
 def register(app: typer.Typer) -> None:

@@ -9,7 +9,7 @@ from typing import Any, Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import emit_json, handle_errors, print_notes
 
 # option name -> experiment-file key ("section.key", file units)
 OVERRIDES = {
@@ -309,10 +309,7 @@ def print_table(result, design, cautions: list[str], defaults: dict[str, Any] | 
         labels = {k: (lab, unit) for k, lab, unit, _ in DEFAULTED}
         parts = [f"{labels[k][0]} {v}{' ' + labels[k][1] if labels[k][1] else ''} ({k})" for k, v in defaults.items()]
         console.print(f"[cyan]defaults assumed (not given):[/] {escape('; '.join(parts))}", highlight=False)
-    for w in result.warnings:
-        console.print(f"[yellow]warning:[/] {escape(w)}", highlight=False)
-    for c in cautions:
-        console.print(f"[red]caution:[/] {escape(c)}", highlight=False)
+    print_notes(console, warnings=result.warnings, cautions=cautions)
 
 
 def register(app: typer.Typer) -> None:

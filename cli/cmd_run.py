@@ -11,7 +11,7 @@ from typing import Any, Optional
 import typer
 
 from cli._common import (abs_path, choices, emit_json, handle_errors, key_option, key_overrides, parse_composition,
-                         parse_polygons, parse_profile, parse_region)
+                         parse_polygons, parse_profile, parse_region, print_notes)
 
 KINDS = ("planar", "axisymmetric", "none")
 
@@ -80,16 +80,10 @@ def print_summary(summary: dict[str, Any], *, title: str, files: list[Path] | No
     console.print(table)
     for line in context_lines(summary):
         console.print(escape(line), highlight=False)
-    for w in summary.get("warnings") or []:
-        console.print(f"[yellow]warning:[/] {escape(str(w))}", highlight=False)
-    for c in summary.get("cautions") or []:
-        console.print(f"[red]caution:[/] {escape(str(c))}", highlight=False)
+    print_notes(console, warnings=summary.get("warnings"), cautions=summary.get("cautions"))
     if summary.get("cautions"):
         console.print("safety notes: docs/safety.md", highlight=False, markup=False)
-    if files:
-        console.print("written:", highlight=False)
-        for f in files:
-            console.print(f"  {escape(str(f))}", highlight=False, soft_wrap=True)
+    print_notes(console, files=files)
 
 
 def make_progress():

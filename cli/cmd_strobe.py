@@ -8,7 +8,7 @@ from typing import Any, Optional
 
 import typer
 
-from cli._common import emit_json, handle_errors
+from cli._common import emit_json, handle_errors, print_notes
 
 # option name -> experiment-file key (file units); names shared with `bos plan`
 RIG_OPTIONS = {
@@ -82,7 +82,6 @@ def _us(v: float) -> str:
 
 def print_plan(plan, cautions: list[str]) -> None:
     from rich.console import Console
-    from rich.markup import escape
     from rich.table import Table
 
     console = Console()
@@ -123,10 +122,7 @@ def print_plan(plan, cautions: list[str]) -> None:
     for label, value in rows:
         t.add_row(label, value)
     console.print(t)
-    for w in plan.warnings:
-        console.print(f"[yellow]warning:[/] {escape(w)}", highlight=False)
-    for c in cautions:
-        console.print(f"[red]caution:[/] {escape(c)}", highlight=False)
+    print_notes(console, warnings=plan.warnings, cautions=cautions)
 
 
 def register(app: typer.Typer) -> None:
