@@ -19,7 +19,7 @@ import numpy as np
 
 from .config import Experiment
 from .errors import ConfigError, InputError
-from .provenance import (_medium_dict, _rig_dict, _section_dict, _small_items, cautions, jsonable,
+from .provenance import (_finite_stat, _medium_dict, _rig_dict, _section_dict, _small_items, cautions, jsonable,
                          summarize)
 from .settings import (_dirichlet, _grid_index, camera_motion_region, camera_region_name, displacement_options,
                        reference_mask)
@@ -337,12 +337,6 @@ def _line_meets_field(line_m, x_m: np.ndarray, y_m: np.ndarray) -> bool:
     return bool(np.any((x >= xs[0]) & (x <= xs[1]) & (y >= ys[0]) & (y <= ys[1])))
 
 
-def _nanstat(a, fn) -> float:
-    a = np.asarray(a, float)
-    a = a[np.isfinite(a)]
-    return float(fn(a)) if a.size else float("nan")
-
-
 #: Median normalised correlation peak below which the pair is refused (unrelated pictures give
 #: 0.2-0.36 with 16 px windows, matching rendered pairs 0.9997) and below which a run warns.
 MIN_MEDIAN_PEAK = 0.4
@@ -514,10 +508,10 @@ def process_inputs(inputs: Inputs, exp: Experiment, *, progress: ProgressFn | No
         # one temperature model everywhere: the file, the figures and the summary all show the
         # isentropic (acoustic) temperature in sound mode
         tk = np.asarray(acoustic.temperature_k, float)
-        tmax, tmin = _nanstat(tk, np.max), _nanstat(tk, np.min)
+        tmax, tmin = _finite_stat(tk, np.max), _finite_stat(tk, np.min)
         summary.update({"min_temperature_k": tmin, "max_temperature_k": tmax,
                         "peak_temperature_rise_k": tmax - medium.temperature_k,
-                        "median_temperature_uncertainty_k": _nanstat(acoustic.sigma_temperature_k, np.median)})
+                        "median_temperature_uncertainty_k": _finite_stat(acoustic.sigma_temperature_k, np.median)})
         summary["temperature_model"] = "isentropic (acoustic): T'/T0 = (gamma - 1)/gamma * p'/p0"
         mach = acoustic_mach_number(acoustic.peak_pressure_pa, medium=medium)
         if mach > LINEAR_ACOUSTICS_MAX_MACH:

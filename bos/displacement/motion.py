@@ -152,15 +152,8 @@ def fit_camera_motion(field: DisplacementField, region: np.ndarray, *, model: st
         raise InputError(
             f"camera-motion region holds only {int(keep.sum())} usable vectors (need {need}); widen the border or region"
         )
-    y, x, dy, dx = y[keep], x[keep], dy[keep], dx[keep]
     centre = ((region.shape[0] - 1) / 2.0, (region.shape[1] - 1) / 2.0)
-    if model == "shift":
-        return CameraMotion((float(dy.mean()), float(dx.mean())), np.zeros((2, 2)), centre, int(dy.size))
-    design = np.column_stack([np.ones_like(y), y - centre[0], x - centre[1]])
-    cy, *_ = np.linalg.lstsq(design, dy, rcond=None)
-    cx, *_ = np.linalg.lstsq(design, dx, rcond=None)
-    matrix = np.array([[cy[1], cy[2]], [cx[1], cx[2]]])
-    return CameraMotion((float(cy[0]), float(cx[0])), matrix, centre, int(dy.size))
+    return _fit(y[keep], x[keep], dy[keep], dx[keep], centre, model)
 
 
 def remove_camera_motion(field: DisplacementField, motion: CameraMotion) -> DisplacementField:
