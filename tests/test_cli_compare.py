@@ -114,7 +114,7 @@ def test_compare_with_control_points(files, tmp_path):
     _check(json.loads(r.stdout), files["overlap"])
     names = sorted(p.name for p in out.iterdir())
     assert names == ["compare-difference.png", "compare-panels.png", "compare-profile-1.csv", "compare-profile-1.png",
-                     "compare.json", "compare.nc"]
+                     "compare-run.json", "compare.json", "compare.nc"]   # -run.json: the output set's manifest
     details = json.loads((out / "compare.json").read_text())
     assert details["transform"]["scale"] == pytest.approx(1.3, rel=0.005)
     assert details["transform"]["rotation_deg"] == pytest.approx(8.0, abs=0.2)
@@ -164,3 +164,24 @@ def test_compare_bad_input(files, tmp_path):
         assert r.exit_code == 2, r.output
         lines = [ln for ln in r.output.splitlines() if ln.strip()]
         assert len(lines) == 1 and words in lines[0], r.output
+
+
+
+def test_failed_rerun_keeps_the_earlier_comparison(files, tmp_path, monkeypatch):
+    """The files of a comparison are one output set: a rerun that fails half-way changes nothing."""
+    from bos._io import check_output_set
+    from bos.schlieren import comparison
+
+    d, out = files["dir"], tmp_path / "cmp"
+    args = ("compare", d / "bos.h5", d / "knife.nc", "--control-points", d / "cp.json", "--out", out, "--json")
+    assert invoke(*args).exit_code == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    assert check_output_set(out / "compare.nc", json.loads((out / "compare-run.json").read_text())["run_id"]) == []
+
+    def broken(*a, **k):
+        raise OSError("disk full (simulated)")
+
+    monkeypatch.setattr(comparison, "_profile_figure", broken)
+    r = invoke(*args)
+    assert r.exit_code == 2 and "disk full" in r.stderr
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before

@@ -364,8 +364,8 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
     Returns
     -------
     list of Path
-        The written files (each atomically); on failure the files already
-        written by this call are removed.
+        The written files, swapped in together (:class:`bos._io.OutputSet`,
+        manifest ``<name>-run.json``); a failure leaves an earlier set untouched.
     """
     from .. import store
     from ..plots import Panel, fields_figure
@@ -382,8 +382,10 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
         cm = float(comp.cols_px[int(np.median(cc))]) if cc.size else float(comp.cols_px.mean())
         lines_px = [(rm, comp.cols_px[0], rm, comp.cols_px[-1]), (comp.rows_px[0], cm, comp.rows_px[-1], cm)]
     samples = [_line_samples(comp, ln) for ln in lines_px]
-    written: list[Path] = []
-    try:
+    from .._io import OutputSet
+
+    # one transaction: a failed or interrupted rerun leaves the earlier comparison untouched
+    with OutputSet(d, name) as out:
         coords = file_coords(comp.y_m, comp.x_m, comp.rows_px, comp.cols_px, what="knife-edge picture")
         variables = {
             "bos_deflection_normal": {"dims": ("y", "x"), "data": comp.bos_normal,
@@ -393,7 +395,7 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
             "difference": {"dims": ("y", "x"), "data": comp.difference,
                            "attrs": {"units": "rad", "long_name": "knife-edge minus BOS deflection normal to the knife"}},
         }
-        written.append(store.write_result(d / f"{name}.nc", coords=coords, variables=variables,
+        (store.write_result(out.path(d / f"{name}.nc"), coords=coords, variables=variables,
                                           attrs={**comparison_attributes(comp), "coordinate_note": coords["y"]["attrs"]["description"]},
                                           history="bos compare"))
         line0, kp = samples[0], comp.knife_object_pixel_m
@@ -402,27 +404,19 @@ def write_comparison(comp: Comparison, directory, *, name: str = "compare",
         panels = [Panel(comp.bos_normal * 1e6, "BOS, projected", "µrad", "RdBu_r", True),
                   Panel(comp.knife_normal * 1e6, "knife edge", "µrad", "RdBu_r", True),
                   Panel(comp.difference * 1e6, "knife - BOS", "µrad", "RdBu_r", True)]
-        written.append(fields_figure(panels, x_m=comp.x_m, y_m=comp.y_m, path=d / f"{name}-panels.png",
+        (fields_figure(panels, x_m=comp.x_m, y_m=comp.y_m, path=out.path(d / f"{name}-panels.png"),
                                      suptitle=f"deflection normal to the knife ({comp.orientation.label})",
                                      profile_m=prof_m))
-        written.append(fields_figure([panels[2]], x_m=comp.x_m, y_m=comp.y_m, path=d / f"{name}-difference.png",
+        (fields_figure([panels[2]], x_m=comp.x_m, y_m=comp.y_m, path=out.path(d / f"{name}-difference.png"),
                                      suptitle="difference map: knife edge - BOS"))
         for i, smp in enumerate(samples, start=1):
-            path = d / f"{name}-profile-{i}.csv"
+            path = out.path(d / f"{name}-profile-{i}.csv")
             labels = [store.csv_label(k, _PROFILE_UNITS.get(k, "rad")) for k in smp]
-            written.append(store.write_table(path, labels, list(smp.values()), fmt="%.9g"))
+            (store.write_table(path, labels, list(smp.values()), fmt="%.9g"))
             r0, c0, r1, c1 = smp["row_px"][0], smp["col_px"][0], smp["row_px"][-1], smp["col_px"][-1]
-            written.append(_profile_figure(smp, d / f"{name}-profile-{i}.png",
+            (_profile_figure(smp, out.path(d / f"{name}-profile-{i}.png"),
                                            f"profile {i}: ({r0:.0f}, {c0:.0f}) -> ({r1:.0f}, {c1:.0f}) knife px"))
-        path = d / f"{name}.json"
+        path = out.path(d / f"{name}.json")
         with atomic_path(path) as tmp:
             tmp.write_text(json.dumps(comp.details(), indent=2, allow_nan=True) + "\n", encoding="utf-8")
-        written.append(path)
-    except BaseException:
-        for p in written:
-            try:
-                Path(p).unlink()
-            except OSError:
-                pass
-        raise
-    return [Path(p) for p in written]
+        return out.commit()
