@@ -195,3 +195,44 @@ def test_terminal_summary_names_the_camera_region_and_the_ambient_check():
                            "reference_region": {"region": "edges", "ambient": False}})
     assert "border band: 72 of 497 vectors used (86 % left out as flow)" in lines[0]
     assert "NOT consistent" in lines[0] and lines[1] == "reference region edges: NOT ambient"
+
+
+# --- coarse global shift: masked normalised cross-correlation -------------------------------
+# Reference: scikit-image's phase_cross_correlation with reference_mask / moving_mask, an
+# independent implementation of Padfield (2012), "Masked object registration in the Fourier
+# domain", IEEE Trans. Image Process. 21, 2706-2718.
+
+@pytest.mark.parametrize("shift", [(3, -5), (-11, 7), (0, 0), (17, 2)])
+@pytest.mark.parametrize("kind", ["border", "strip"])
+def test_masked_ncc_shift_matches_scikit_image(shift, kind):
+    skreg = pytest.importorskip("skimage.registration")
+    from bos.displacement.motion import masked_ncc_shift
+
+    rng = np.random.default_rng(3)
+    big = rng.random((200, 220))
+    ref = big[40:160, 40:180]
+    dy, dx = shift
+    meas = big[40 - dy:160 - dy, 40 - dx:180 - dx] + 0.05 * rng.random((120, 140))
+    region = np.zeros(ref.shape, dtype=bool)
+    if kind == "border":
+        region[:20] = region[-20:] = True
+        region[:, :20] = region[:, -20:] = True
+    else:
+        region[:, 5:45] = True
+    ours = masked_ncc_shift(ref, meas, region)
+    theirs, *_ = skreg.phase_cross_correlation(ref, meas, reference_mask=region, moving_mask=region)
+    assert ours == (dy, dx)
+    assert ours == (-int(theirs[0]), -int(theirs[1]))
+
+
+@pytest.mark.parametrize("true", [(7.6, -3.2), (-23.4, 41.7), (52.0, -12.5)])
+def test_coarse_camera_shift_within_its_bin_factor(true):
+    from bos.displacement import coarse_camera_shift
+
+    bg = S.random_dots(shape=(512, 512), dot_diameter_px=2.5, density=0.5, seed=7, margin_px=60)
+    ref = S.render(bg, shape=(512, 512), bit_depth=16, seed=1)
+    meas = S.render(bg, shape=(512, 512), bit_depth=16, seed=2, camera_shift=true)
+    region = camera_region(ref.shape, region="border")
+    got = coarse_camera_shift(ref, meas, region)
+    # 512 px images are binned by 4 (smaller side kept >= 128 px): error at most half a bin + 1 px
+    assert abs(got[0] - true[0]) <= 3.0 and abs(got[1] - true[1]) <= 3.0
