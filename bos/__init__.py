@@ -16,4 +16,7 @@ try:  # one place for the version: pyproject.toml, read back from the installed 
     __version__ = _version("bos-toolkit")
 except _PackageNotFoundError:  # pragma: no cover - a source tree that was never installed
     __version__ = "0+unknown"
+from ._memory import retain_freed_memory as _retain_freed_memory  # noqa: E402
+
+_retain_freed_memory()  # fewer page faults per frame (bos/_memory.py; BOS_RETAIN_FREED_MEMORY=0 turns it off)
 from .store import open_result  # noqa: E402,F401 - bos.open_result(path) -> xarray.Dataset
