@@ -188,7 +188,17 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
         # interleaved runs: whole bands 1.36-1.45 s, chunks of 2048 / 4096 / 8192 windows of
         # 16 px 1.20-1.22 / 1.04-1.19 / 1.37-1.38 s (process CPU time 1.81-1.94 -> 1.52-1.63 s).
         sub = max(1, _CHUNK_ELEMS // (nbc * window * window))
-        for i0 in range(0, nbr, sub):
+        starts = range(0, nbr, sub)
+        # chunks run concurrently, one per thread, each single-threaded: the single-core
+        # remainder (stacking, means, direct sums, peak fits, statistics) then uses every
+        # core too (numpy and pocketfft release the GIL; results bit-identical).  Quiet
+        # 2-core machine, medians of 3 (benchmarks/bench_displacement.py): 4 MP strong field
+        # 2 threads 0.91 -> 0.77-0.89 s; 24 MP 4.45 -> 3.7 s, 2 threads vs 1 x1.25-1.29 ->
+        # x1.36-1.53.  (Tried earlier under load 8-17 from other jobs: no gain there.)  With
+        # a single chunk the FFTs thread instead.
+        inner = workers if len(starts) < 2 else 1
+
+        def chunk(i0):
             i1 = min(i0 + sub, nbr)
             ch = (slice(b0 + i0, b0 + i1), sl[1])
 
@@ -207,13 +217,13 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
             A = _zero_mean(A, weight)
             B = _zero_mean(B, weight)
             if direct and deform:
-                ty, tx, pk, sums = _direct_stack(A, B, workers=workers)
+                ty, tx, pk, sums = _direct_stack(A, B, workers=inner)
                 if shift_bias is not None and shift_bias.residual is not None:
                     ty -= shift_bias.residual(ty)
                     tx -= shift_bias.residual(tx)
             else:
                 sums = None
-                ty, tx, pk, _, _ = _correlate_stack(A, B, workers=workers)
+                ty, tx, pk, _, _ = _correlate_stack(A, B, workers=inner)
             put(ry, ty)
             put(rx, tx)
             put(peak, pk)
@@ -221,6 +231,12 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
                 s_y, s_x = correlation_statistics(A, B, sums=sums)
                 put(sy, s_y)
                 put(sx, s_x)
+
+        if inner == workers:
+            for i0 in starts:
+                chunk(i0)
+        else:
+            list(_deform.pool(workers).map(chunk, starts))
 
     # (processing row bands concurrently in threads, each single-threaded, was tried:
     # no measurable gain on the shared 2-core machine, 2.3 -> 2.3-2.7 s on a 4 MP pair)
