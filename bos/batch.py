@@ -273,6 +273,19 @@ def _mask(exp: Experiment, shape: tuple[int, int]) -> np.ndarray | None:
 
 
 def _peak_rss_bytes() -> int:
+    """Peak resident memory of this process [bytes].
+
+    VmHWM of /proc/self/status where there is one: ``ru_maxrss`` keeps the
+    high-water mark of the parent across fork + exec on Linux, so a worker
+    started from a large parent would report the parent's peak.
+    """
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024  # kB
+    except OSError:
+        pass
     try:
         import resource
 
