@@ -347,3 +347,18 @@ def test_no_texture_is_reported_as_such():
 
 def test_registry_lists_methods():
     assert "correlation" in METHODS and callable(METHODS["correlation"])
+
+
+def test_window_pixel_cover_matches_the_windows_it_selects():
+    # definition check: the union of the selected windows' pixel squares, built window by window
+    from bos.displacement.correlation import _window_pixels
+
+    rng = np.random.default_rng(1)
+    for window, step in ((16, 8), (32, 16), (15, 7), (16, 4), (8, 8), (12, 4)):
+        for ny, nx in ((6, 20), (1, 7), (3, 1)):
+            sel = rng.random((ny, nx)) < 0.3
+            shape = ((ny - 1) * step + window, (nx - 1) * step + window)
+            ref = np.zeros(shape, bool)
+            for i, j in zip(*np.nonzero(sel)):
+                ref[i * step:i * step + window, j * step:j * step + window] = True
+            assert np.array_equal(_window_pixels(sel, window, step, shape), ref), (window, step, ny, nx)

@@ -94,6 +94,37 @@ def _direct_stack(a, b, *, workers):
 # Pixels per chunk of window stacks processed together (4 MB of float32 per stack).
 _CHUNK_ELEMS = 1 << 20
 
+# A partial (adaptive) pass computes only its selected windows, but picking their pixels costs
+# more per window than a plain pass: above this fraction of windows, in the whole pass or in a
+# band, the plain computation is used.  With it, whole bands (not bands of 8 window rows), the
+# pixel cover built from cells instead of a loop over windows, and the deformation-bias
+# correction evaluated only where pixels are sampled, the repeat on smooth random 4 MP fields
+# (benchmarks/bench_repeat.py, quiet machine, medians of 3) costs, in full final passes:
+# 27 % of the windows redone 1.0 -> 0.42-0.47, 11 % 0.18-0.25, 9 % 0.15-0.18.
+_DENSE_REDO = 0.4
+
+
+def _window_pixels(sel, window, step, shape):
+    """Pixels (bool, ``shape``) covered by the selected windows ``sel`` (window-grid shape) of a block."""
+    k, rem = divmod(window, step)
+    ny, nx = sel.shape
+    if rem == 0 and shape == ((ny + k - 1) * step, (nx + k - 1) * step):
+        # windows of k x k cells of step x step px: a cell is covered when one of the k x k
+        # windows starting at or before it is selected; then each cell is expanded to its pixels
+        cells = np.zeros((ny + k - 1, nx + k - 1), dtype=bool)
+        for di in range(k):
+            for dj in range(k):
+                cells[di:di + ny, dj:dj + nx] |= sel
+        return np.repeat(np.repeat(cells, step, axis=0), step, axis=1)
+    starts = np.zeros(shape, dtype=bool)
+    ii, jj = np.nonzero(sel)
+    starts[ii * step, jj * step] = True
+    # a window starting at (r, c) covers r..r+window-1: dilate the start points forwards along
+    # each axis (separable)
+    cover = ndi.maximum_filter1d(starts.view(np.uint8), window, axis=0, origin=(window - 1) // 2, mode="constant")
+    cover = ndi.maximum_filter1d(cover, window, axis=1, origin=(window - 1) // 2, mode="constant")
+    return cover.astype(bool)
+
 
 def _own_stack(stack, image):
     """``stack`` as a float32 array of its own (reshaping overlapping windows already copies)."""
@@ -147,8 +178,9 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
     sx = np.full(shape, np.nan)
     masked = np.zeros(shape, dtype=bool)
     band = max(1, block_elems // (cs.size * window * window))
-    if redo is not None:
-        band = min(band, 8)
+    if redo is not None and redo.mean() > _DENSE_REDO:
+        # most windows are redone: a plain full pass is cheaper than picking pixels
+        redo = None
 
     def run(b0, j0, j1, sel=None):
         sl = (slice(b0, b0 + band), slice(j0, j1))
@@ -156,17 +188,19 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
         c0, c1 = int(cs[j0]), int(cs[j1 - 1] + window)
         where = None
         if sel is not None:
-            where = np.zeros((r1 - r0, c1 - c0), dtype=bool)
-            for i, j in zip(*np.nonzero(sel)):
-                where[i * step:i * step + window, j * step:j * step + window] = True
+            where = _window_pixels(sel, window, step, (r1 - r0, c1 - c0))
         if deform:
             prow = np.arange(r0, r1, dtype=np.float64)
             pcol = np.arange(c0, c1, dtype=np.float64)
             dyp = _deform.grid_to_points(pr, pc, pdy, prow, pcol)
             dxp = _deform.grid_to_points(pr, pc, pdx, prow, pcol)
             if shift_bias is not None:  # realise the predictor exactly (see deformation_bias)
-                dyp += shift_bias(dyp)
-                dxp += shift_bias(dxp)
+                if where is None:
+                    dyp += shift_bias(dyp)
+                    dxp += shift_bias(dxp)
+                else:  # only where it is used
+                    dyp[where] += shift_bias(dyp[where])
+                    dxp[where] += shift_bias(dxp[where])
             a, b = _deform.deform_pair(coef_ref, coef_meas, r0, r1, c0, c1, dyp, dxp,
                                        order=order, workers=workers, symmetric=symmetric, ref=ref, where=where)
             del dyp, dxp
@@ -249,6 +283,8 @@ def _correlation_pass(ref, meas, coef_ref, coef_meas, mask, predictor, *, window
                 continue
             j0, j1 = int(cols[0]), int(cols[-1]) + 1
         sel = None if redo is None else redo[b0:b0 + band, j0:j1]
+        if sel is not None and sel.mean() > _DENSE_REDO:
+            sel = None  # a band mostly redone: the whole band, as in a full pass
         run(b0, j0, j1, sel)
         done[b0:b0 + band, j0:j1] = True if sel is None else sel
     dy = py + ry
