@@ -42,7 +42,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy.optimize import brentq
 
 from .errors import GeometryError, InputError
 from .media import pressure_to_spl, spl_to_pressure_amplitude
@@ -712,6 +711,9 @@ def _fixed_geometry(rig: Rig, solve_for: str) -> dict[str, Any]:
 
 
 def _root(func, lo: float, hi: float) -> float:
+    from scipy.optimize import brentq  # imported here: scipy.optimize costs ~0.4 s to import and
+    # only the planning solvers need it (a `bos run` does not)
+
     return brentq(func, lo, hi, xtol=1e-12 * hi, rtol=1e-12, maxiter=200)
 
 

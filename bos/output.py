@@ -323,13 +323,19 @@ def save_run(result: RunResult, exp: Experiment, *, report: bool = False, virtua
     run_id = attrs.get("run_id")
     with OutputSet(paths["result"].parent, exp.output.name, run_id=run_id) as out:
         attrs["run_id"] = out.run_id
-        store.write_result(out.path(paths["result"]), coords=coords, variables=variables, attrs=attrs,
-                           history=f"bos run from {exp.source_file or 'command-line options'}")
-        samples = sample_profile(data, line_file)
-        write_profile_csv(out.path(paths["profile_csv"]), samples)
+        result_file, csv_file = out.path(paths["result"]), out.path(paths["profile_csv"])  # listed first
+
+        def write_files() -> None:
+            store.write_result(result_file, coords=coords, variables=variables, attrs=attrs,
+                               history=f"bos run from {exp.source_file or 'command-line options'}")
+            write_profile_csv(csv_file, sample_profile(data, line_file))
+
         if exp.output.figures:
             staged = {k: (out.path(v) if k.startswith("fig_") else v) for k, v in paths.items()}
-            _figures(result, staged, line, samples)
+            # the result file and the CSV are written while a forked child draws figures
+            _figures(result, staged, line, meanwhile=write_files)
+        else:
+            write_files()
         if virtual_views:
             from .schlieren import write_virtual_views
 
@@ -343,18 +349,19 @@ def save_run(result: RunResult, exp: Experiment, *, report: bool = False, virtua
         return out.commit()
 
 
-def _figures(result: RunResult, paths: dict[str, Path], line=None, samples=None) -> list[Path]:
+def _figures(result: RunResult, paths: dict[str, Path], line=None, *, meanwhile=None) -> list[Path]:
     """Draw the figures of a run from its result data (the content of the result file).
 
     Everything is drawn by :func:`bos.plots.write_run_figures` from
     :func:`as_result_data`, exactly as ``bos plot`` draws it from the file;
     ``paths`` maps figure keys (``fig_*``) to where to write them (staged
     paths); ``line`` is the profile line [m] (default: the one stored in the
-    attributes, else :func:`bos.plots.default_profile_line`).  ``samples`` is
-    not used (kept for callers that pass it).
+    attributes, else :func:`bos.plots.default_profile_line`).
+    ``meanwhile``: work of this process done while figures are drawn in a
+    forked child (see :func:`bos.plots.write_run_figures`).
     """
     from . import plots
 
     result_path = paths.get("result")
     name = Path(result_path).stem if result_path is not None else None
-    return plots.write_run_figures(as_result_data(result), paths, line=line, name=name)
+    return plots.write_run_figures(as_result_data(result), paths, line=line, name=name, meanwhile=meanwhile)

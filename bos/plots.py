@@ -1018,7 +1018,8 @@ def _figure_path(paths: Mapping[str, Path], key: str) -> Path | None:
 
 
 def write_run_figures(data: Any, paths: Mapping[str, str | Path], *, line: Sequence[Sequence[float]] | None = None,
-                      name: str | None = None, dpi: int = DPI) -> list[Path]:
+                      name: str | None = None, dpi: int = DPI, processes: int | None = None,
+                      meanwhile=None) -> list[Path]:
     """Draw and write every figure of a result, each atomically, at the given paths.
 
     Parameters
@@ -1035,6 +1036,13 @@ def write_run_figures(data: Any, paths: Mapping[str, str | Path], *, line: Seque
         Run name for the titles.
     dpi : int
         Raster resolution (default :data:`DPI`).
+    processes : int, optional
+        1: draw every figure in this process.  Default: with two or more
+        cores, half of them in a forked child at the same time
+        (:func:`_draw_jobs`).
+    meanwhile : callable, optional
+        Other work of the caller, run in this process while the child draws
+        (before any figure when drawing sequentially).
 
     Returns
     -------
@@ -1043,18 +1051,78 @@ def write_run_figures(data: Any, paths: Mapping[str, str | Path], *, line: Seque
     """
     fd = figure_data(data, name=name)
     line = profile_line_of(fd) if line is None else [list(map(float, p)) for p in line]
-    written = []
     builders = _figure_builders(fd, line=line)
-    for key, build in builders.items():
-        path = _figure_path(paths, key)
-        if path is None:
-            continue
+    jobs = [(key, path) for key in builders if (path := _figure_path(paths, key)) is not None]
+
+    def draw(key: str, path: Path) -> Path:
         if key == "fig_profile":
             s, curves = profile_curves(fd, line)       # through profile_figure (one entry point for the profile)
-            written.append(profile_figure(s, curves, path=path, dpi=dpi, title=_profile_title(fd, line)))
-        else:
-            written.append(_save(build(), path, dpi))
-    return written
+            return profile_figure(s, curves, path=path, dpi=dpi, title=_profile_title(fd, line))
+        return _save(builders[key](), path, dpi)
+
+    return _draw_jobs(jobs, draw, processes=processes, meanwhile=meanwhile)
+
+
+def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = None, meanwhile=None) -> list[Path]:
+    """Run ``draw(key, path)`` for every job; with a second core, half of them in a forked process.
+
+    Drawing is Python-bound (matplotlib holds the interpreter lock; threads
+    gained ~15 % and matplotlib is not thread-safe), so the first half of the
+    figures is drawn by a child made with ``fork`` (it shares the data, no
+    copy, and starts in milliseconds) while this process draws the rest.
+    Each figure is written atomically by whoever draws it; a figure the
+    child did not deliver (it failed or was killed) is drawn here afterwards,
+    so the result is the same as drawing all of them here.  4 MP planar run,
+    four figures: 0.84-1.0 s -> 0.35-0.52 s (quiet 2-core machine).  Without
+    ``fork`` (not Linux/macOS), with one core or ``processes=1``:
+    sequential.  ``meanwhile`` (the caller's other work, e.g. writing the
+    result file) runs here while the child draws; the child then takes one
+    figure more than half.
+    """
+    import multiprocessing as mp
+    import sys
+
+    n = len(jobs)
+    parallel = (processes is None or processes > 1) and n >= 2 and (os.cpu_count() or 1) >= 2 \
+        and "fork" in mp.get_all_start_methods()
+    if not parallel:
+        if meanwhile is not None:
+            meanwhile()
+        return [draw(k, p) for k, p in jobs]
+    split = min(n - 1, n // 2 + (1 if meanwhile is not None else 0))
+    child_jobs, own_jobs = jobs[:split], jobs[split:]
+
+    def child() -> None:
+        try:
+            for k, p in child_jobs:
+                draw(k, p)
+        except BaseException:  # noqa: BLE001 - no traceback from the child: the parent redraws
+            os._exit(1)
+
+    for stream in (sys.stdout, sys.stderr):  # nothing buffered may be written twice
+        try:
+            stream.flush()
+        except (OSError, ValueError, AttributeError):
+            pass
+    proc = mp.get_context("fork").Process(target=child, daemon=True)
+    try:
+        proc.start()
+    except OSError:
+        return _draw_jobs(jobs, draw, processes=1, meanwhile=meanwhile)
+    try:
+        if meanwhile is not None:
+            meanwhile()
+        for k, p in own_jobs:
+            draw(k, p)
+        proc.join()
+    finally:
+        if proc.is_alive():  # interrupted here: the child stops too
+            proc.terminate()
+            proc.join()
+    for k, p in child_jobs:
+        if proc.exitcode != 0 or not Path(p).is_file():
+            draw(k, p)
+    return [Path(p) for _, p in jobs]
 
 
 def figure_paths(directory: str | Path, name: str, *, suffix: str = ".png") -> dict[str, Path]:

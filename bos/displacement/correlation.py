@@ -10,7 +10,6 @@ import numpy as np
 import scipy.fft as sfft
 from numpy.lib.stride_tricks import sliding_window_view
 from scipy import ndimage as ndi
-from scipy.interpolate import RectBivariateSpline
 
 from ..errors import InputError
 from . import _deform
@@ -440,6 +439,8 @@ def midpoint_to_reference(rows, cols, dy, dx, exclude=None, *, iterations=3):
     """
     if min(dy.shape) < 2:
         return dy, dx
+    from scipy.interpolate import RectBivariateSpline  # here: symmetric deformation only (import ~0.2 s)
+
     fill = exclude if exclude is not None else ~np.isfinite(dy)
     sy = replace_invalid(dy, fill)
     sx = replace_invalid(dx, fill)

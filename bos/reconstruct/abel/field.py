@@ -5,7 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import optimize
 
 from ...errors import InputError
 from .operator import inversion_operator
@@ -78,6 +77,8 @@ def find_symmetry_axis(eps, *, search=None) -> float:
     costs = [symmetry_residual(eps, c) for c in grid]
     k = int(np.argmin(costs))
     a, b = grid[max(k - 1, 0)], grid[min(k + 1, grid.size - 1)]
+    from scipy import optimize  # here: ~0.2 s to import, only the axis search needs it
+
     res = optimize.minimize_scalar(lambda c: symmetry_residual(eps, c), bounds=(a, b), method="bounded",
                                    options={"xatol": 1e-3})
     return float(res.x)
