@@ -334,3 +334,60 @@ def test_large_fields_drawn_as_block_means_with_flags_kept():
     np.testing.assert_allclose(_pixel(fig, ax, x[456] * 1e3, y[321] * 1e3)[:3], to_rgba(plots.INVALID_COLOUR)[:3],
                                atol=0.02)
 
+
+
+# --- figures drawn in a forked child (bos.plots._draw_jobs) ------------------------------------
+
+def _fork_available():
+    import multiprocessing as mp
+    import os
+
+    return "fork" in mp.get_all_start_methods() and (os.cpu_count() or 1) >= 2
+
+
+def test_figures_drawn_in_a_child_are_the_same_bytes(tmp_path):
+    if not _fork_available():
+        pytest.skip("needs fork and two cores")
+    from bos.plots import _draw_jobs
+
+    import numpy as np
+    from matplotlib.figure import Figure
+
+    def draw(key, path):
+        fig = Figure(figsize=(3, 2))
+        ax = fig.add_subplot()
+        ax.imshow(np.outer(np.arange(20), np.arange(int(key) + 5)))
+        fig.savefig(path, dpi=50)
+        return path
+
+    seq = [(str(k), tmp_path / f"s{k}.png") for k in range(4)]
+    par = [(str(k), tmp_path / f"p{k}.png") for k in range(4)]
+    assert _draw_jobs(seq, draw, processes=1) == [p for _, p in seq]
+    got = _draw_jobs(par, draw, meanwhile=lambda: None)
+    assert got == [p for _, p in par]
+    for (_, a), (_, b) in zip(seq, par):
+        assert a.read_bytes() == b.read_bytes()
+
+
+def test_a_figure_the_child_fails_to_draw_is_drawn_here_without_a_traceback(tmp_path, capfd):
+    if not _fork_available():
+        pytest.skip("needs fork and two cores")
+    import os
+
+    from bos.plots import _draw_jobs
+
+    parent = os.getpid()
+    drawn_here = []
+
+    def draw(key, path):
+        if os.getpid() != parent:
+            raise RuntimeError("child cannot draw")
+        path.write_text(key)
+        drawn_here.append(key)
+        return path
+
+    jobs = [(str(k), tmp_path / f"f{k}.txt") for k in range(3)]
+    assert _draw_jobs(jobs, draw) == [p for _, p in jobs]
+    assert sorted(drawn_here) == ["0", "1", "2"]
+    assert [p.read_text() for _, p in jobs] == ["0", "1", "2"]
+    assert "Traceback" not in capfd.readouterr().err
