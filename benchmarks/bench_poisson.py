@@ -9,16 +9,26 @@ taken at a size it can, and printed with that size).
 
 Weighted case (issue 9): weights 1/sigma^2 spanning ~x600 (sigma: a smooth x5 trend times
 independent x5 factors, like the per-vector uncertainty of a measured field) on a full
-rectangle.  Printed in the same run: the main solve with the DCT-preconditioned CG tried
-first (it hits its iteration limit, then falls back to multigrid; what ``method="auto"`` did
-before), with ``method="auto"`` (multigrid straight away), and the main solve plus the
-32-sample Monte Carlo uncertainty through one set-up, as a multiple of one auto solve.
+rectangle, at 256^2, 512^2 and 611^2 (373 321 cells, the size of a 24 MP run).  Printed in the
+same run: at 256^2 the main solve with the DCT-preconditioned CG tried first (it hits its
+iteration limit, then falls back to multigrid; what ``method="auto"`` did before) against
+``method="auto"`` (multigrid straight away); at every size, in 3 interleaved rounds (medians),
+one ``auto`` main solve and the main solve plus the 32-sample Monte Carlo uncertainty through one
+set-up, by the new path (one sparse LU factorisation in the grid's nested-dissection order, up to
+``MC_DIRECT_MAX_UNKNOWNS`` cells) and by the old one (sparse LU with minimum-degree ordering up to
+150 000 cells, multigrid samples to rtol 1e-3 beyond), each as a multiple of one auto solve, with
+the peak memory of the new path (child process) and the largest difference of the two sigma
+fields (same noise).
 
-Usage:  python benchmarks/bench_poisson.py [--quick] [--weighted-only]
+Usage:  python benchmarks/bench_poisson.py [--quick] [--weighted-only] [--sizes 256 512 611 1000]
 """
 
 from __future__ import annotations
 
+import contextlib
+import functools
+import gc
+import subprocess
 import sys
 import time
 
@@ -82,25 +92,91 @@ def weighted_case(n):
     return h, gy, gx, sigma
 
 
-def weighted(n):
+@contextlib.contextmanager
+def old_path():
+    """The uncertainty path before this revision: SuperLU with minimum-degree ordering up to
+    150 000 cells, multigrid samples (rtol 1e-3) beyond."""
+    limit, factory = poisson.MC_DIRECT_MAX_UNKNOWNS, poisson.SOLVERS["sparse"]
+    poisson.MC_DIRECT_MAX_UNKNOWNS = 150_000
+    poisson.SOLVERS["sparse"] = functools.partial(poisson.prepare_sparse, ordering="mmd")
+    try:
+        yield
+    finally:
+        poisson.MC_DIRECT_MAX_UNKNOWNS, poisson.SOLVERS["sparse"] = limit, factory
+
+
+def _memory_mb(key):
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith(key):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def peak_memory(n):
+    """Child process: peak resident memory of the new path above what the process held before (Linux)."""
+    from bos.reconstruct.poisson import integrate_gradient_with_uncertainty
+
+    h, gy, gx, sigma = weighted_case(n)
+    before = _memory_mb("VmRSS")
+    integrate_gradient_with_uncertainty(gy, gx, sigma_y=sigma, sigma_x=sigma, n_samples=32, spacing_m=h,
+                                        weights=1 / sigma**2, reference_region="left")
+    print(f"{_memory_mb('VmHWM') - before:.0f}")
+
+
+def _child_peak_mb(n):
+    out = subprocess.run([sys.executable, __file__, "--peak", str(n)], capture_output=True, text=True)
+    return float(out.stdout.split()[-1]) if out.returncode == 0 and out.stdout.strip() else float("nan")
+
+
+def weighted(n, *, cg_first=False, rounds=REPEATS):
+    """Main solve + 32-sample uncertainty, new path and old path, in units of one auto solve.
+
+    ``rounds`` interleaved rounds (auto solve, new path, old path), medians printed.
+    """
     from bos.reconstruct.poisson import integrate_gradient_with_uncertainty
 
     h, gy, gx, sigma = weighted_case(n)
     w = 1 / sigma**2
     pb = poisson._Problem(gy, gx, h, None, None, w, "neumann", None)
     opts = dict(spacing_m=h, weights=w, reference_region="left")
-    t0 = time.perf_counter()
-    integrate_gradient(gy, gx, method="pcg", **opts)
-    t1 = time.perf_counter()
-    integrate_gradient(gy, gx, method="auto", **opts)
-    t2 = time.perf_counter()
-    _, sig_phi, solver = integrate_gradient_with_uncertainty(gy, gx, sigma_y=sigma, sigma_x=sigma, n_samples=32,
-                                                            **opts)
-    t3 = time.perf_counter()
-    spread = w.max() / w.min()
-    print(f"weighted {n}^2 (weights spanning x{spread:.0f}; auto picks {poisson.auto_method(pb)!r}):\n"
-          f"  main solve, CG tried first: {t1 - t0:6.2f} s   auto: {t2 - t1:6.2f} s   ratio {(t1 - t0) / (t2 - t1):.1f}x\n"
-          f"  main solve + 32-sample uncertainty ({solver}): {t3 - t2:6.2f} s = {(t3 - t2) / (t2 - t1):.1f} auto solves")
+    unc = dict(sigma_y=sigma, sigma_x=sigma, n_samples=32, **opts)
+    print(f"weighted {n}^2 ({int(pb.valid.sum())} cells, weights spanning x{w.max() / w.min():.0f}; "
+          f"auto main solve picks {poisson.auto_method(pb)!r}):")
+    if cg_first:
+        t0 = time.perf_counter()
+        integrate_gradient(gy, gx, method="pcg", **opts)
+        t1 = time.perf_counter()
+        integrate_gradient(gy, gx, method="auto", **opts)
+        t2 = time.perf_counter()
+        print(f"  main solve, CG tried first: {t1 - t0:6.2f} s   auto: {t2 - t1:6.2f} s   "
+              f"ratio {(t1 - t0) / (t2 - t1):.1f}x")
+    times = {"auto": [], "new": [], "old": []}
+    for _ in range(rounds):
+        t = time.perf_counter()
+        integrate_gradient(gy, gx, method="auto", **opts)
+        times["auto"].append(time.perf_counter() - t)
+        gc.collect()
+        t = time.perf_counter()
+        _, s_new, solver_new = integrate_gradient_with_uncertainty(gy, gx, **unc)
+        times["new"].append(time.perf_counter() - t)
+        with old_path():
+            gc.collect()
+            t = time.perf_counter()
+            _, s_old, solver_old = integrate_gradient_with_uncertainty(gy, gx, **unc)
+            times["old"].append(time.perf_counter() - t)
+    med = {k: float(np.median(v)) for k, v in times.items()}
+    ok = s_old > 0.05 * s_old.max()
+    dev = float(np.abs(s_new[ok] / s_old[ok] - 1).max())
+    name = {"sparse": "sparse LU", "multigrid": "multigrid samples"}
+    print(f"  one auto main solve: {med['auto']:6.2f} s (runs {', '.join(f'{t:.2f}' for t in times['auto'])})")
+    print(f"  main solve + 32-sample uncertainty, new path ({name[solver_new]}, nested dissection): "
+          f"{med['new']:6.2f} s = {med['new'] / med['auto']:.1f} auto solves "
+          f"(runs {', '.join(f'{t:.2f}' for t in times['new'])}), peak memory +{_child_peak_mb(n):.0f} MB")
+    print(f"  main solve + 32-sample uncertainty, old path ({name[solver_old]}"
+          f"{', minimum degree' if solver_old == 'sparse' else ''}): {med['old']:6.2f} s = "
+          f"{med['old'] / med['auto']:.1f} auto solves (runs {', '.join(f'{t:.2f}' for t in times['old'])})")
+    print(f"  sigma new vs old (same noise): max relative difference {dev:.1e} where sigma > 5 % of its maximum")
 
 
 def main(quick=False):
@@ -132,6 +208,14 @@ def main(quick=False):
 
 
 if __name__ == "__main__":
+    if "--peak" in sys.argv:
+        peak_memory(int(sys.argv[sys.argv.index("--peak") + 1]))
+        sys.exit()
     if "--weighted-only" not in sys.argv:
         main(quick="--quick" in sys.argv)
-    weighted(256 if "--quick" in sys.argv else 512)
+    quick = "--quick" in sys.argv
+    sizes = (256,) if quick else (256, 512, 611)
+    if "--sizes" in sys.argv:
+        sizes = tuple(int(a) for a in sys.argv[sys.argv.index("--sizes") + 1:] if a.isdigit())
+    for k, n in enumerate(sizes):
+        weighted(n, cg_first=k == 0)

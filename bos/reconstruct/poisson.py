@@ -28,8 +28,9 @@ Solvers (registry :data:`SOLVERS`, all solve the same discrete problem):
     (2 x 2 cell blocks, Galerkin coarse operators with over-correction,
     pyamg smoothers); robust for any mask and weights (fallback of "pcg").
 ``"sparse"``
-    the same sparse system solved directly by scipy's sparse LU
-    (reference / fallback for small grids).
+    the same sparse system solved directly by scipy's sparse LU in the
+    grid's nested-dissection order (reference; factorised once for the
+    Monte Carlo uncertainty).
 
 References
 ----------
@@ -430,22 +431,80 @@ def _on_valid(pb: _Problem, index, solve_vec):
     return solve
 
 
-@_register("sparse")
-def prepare_sparse(pb: _Problem):
-    """Direct sparse LU of the normal equations (scipy ``splu``; reference solver).
+def _grid_nested_dissection(index, leaf: int = 16):
+    """Fill-reducing elimination order of the valid cells: nested dissection by grid lines.
 
-    The matrix is symmetric positive definite, so SuperLU runs in symmetric
-    mode (minimum-degree ordering of A + A^T, no pivoting): on the 4 MP
-    weighted problem (65 025 unknowns) 3.4 M non-zeros in L + U against
-    6.3 M with the default column ordering.  The returned function also
-    solves blocks of right-hand sides (``solve.block``, compressed numbering
-    ``solve.index``), which the Monte Carlo uncertainty uses.
+    The box is split by its middle row or column (across its longer side); the
+    two halves are ordered first (recursively), the separating line last, so
+    eliminating one half never fills the other.  Boxes of at most ``leaf``
+    cells keep row-major order.  ``index`` holds the compressed number of each
+    grid cell (-1 where invalid); returns the compressed numbers in elimination
+    order.  On a 2-D grid this ordering gives O(n log n) fill and O(n^1.5)
+    factorisation work (George 1973).
+
+    Written by hand (the geometry is known, so no graph partitioner is
+    needed) and measured on the weighted 611^2 benchmark (373 321 unknowns,
+    SuperLU in symmetric mode): ordering 0.09 s, factorisation 1.4 s against
+    2.5 s with SuperLU's own minimum-degree ordering (MMD on A + A^T); METIS
+    nested dissection (pymetis) took 1.7 s to order for a 1.3 s factorisation;
+    leaves of 16 cells factorised faster than leaves of 64 (1.4 vs 1.9 s).
+
+    References
+    ----------
+    George (1973), SIAM J. Numer. Anal. 10:345 (nested dissection of a regular finite element mesh) [M].
+    """
+    out = []
+
+    def split(r0, r1, c0, c1):
+        if (r1 - r0) * (c1 - c0) <= leaf:
+            box = index[r0:r1, c0:c1]
+            out.append(box[box >= 0])
+            return
+        if r1 - r0 >= c1 - c0:
+            m = (r0 + r1) // 2
+            split(r0, m, c0, c1)
+            split(m + 1, r1, c0, c1)
+            line = index[m, c0:c1]
+        else:
+            m = (c0 + c1) // 2
+            split(r0, r1, c0, m)
+            split(r0, r1, m + 1, c1)
+            line = index[r0:r1, m]
+        out.append(line[line >= 0])
+
+    split(0, index.shape[0], 0, index.shape[1])
+    return np.concatenate(out)
+
+
+@_register("sparse")
+def prepare_sparse(pb: _Problem, *, ordering: str = "nested_dissection"):
+    """Direct sparse LU of the normal equations (scipy's SuperLU; reference solver).
+
+    The matrix is symmetric positive definite (free constants pinned), so
+    SuperLU runs in symmetric mode (no pivoting) on the matrix permuted to
+    the grid's nested-dissection order (:func:`_grid_nested_dissection`;
+    ``ordering="mmd"``: SuperLU's minimum-degree ordering of A + A^T, as
+    before, 2.5 s instead of 1.4 s at 373 321 unknowns).  The returned
+    function also solves blocks of right-hand sides (``solve.block``,
+    compressed numbering ``solve.index``), which the Monte Carlo uncertainty
+    uses.
     """
     A, _, index = _sparse_system(pb)
-    lu = spla.splu(A.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                   options=dict(SymmetricMode=True))
-    solve = _on_valid(pb, index, lambda b, rtol: lu.solve(b))
-    solve.block, solve.index = lu.solve, index
+    options = dict(diag_pivot_thresh=0.0, options=dict(SymmetricMode=True))
+    if ordering == "mmd":
+        block = spla.splu(A.tocsc(), permc_spec="MMD_AT_PLUS_A", **options).solve
+    elif ordering == "nested_dissection":
+        order = _grid_nested_dissection(index)
+        lu = spla.splu(A[order][:, order].tocsc(), permc_spec="NATURAL", **options)
+
+        def block(b):
+            x = np.empty_like(b, dtype=float)
+            x[order] = lu.solve(b[order])
+            return x
+    else:
+        raise InputError(f"unknown ordering {ordering!r}; use 'nested_dissection' or 'mmd'")
+    solve = _on_valid(pb, index, lambda b, rtol: block(b))
+    solve.block, solve.index = block, index
     return solve
 
 
@@ -682,15 +741,19 @@ def integrate_gradient(
     return _set_level(pb, solve(_grid_system(pb, rhs_only=True)), reference_region, reference_value)
 
 
-MC_DIRECT_MAX_UNKNOWNS = 150_000
+MC_DIRECT_MAX_UNKNOWNS = 1_000_000
 """With uncertainty and ``method="auto"``: problems needing an iterative solver that have at most
-this many valid cells are factorised once (sparse LU, :func:`prepare_sparse`) and the main solve
-and all Monte Carlo samples reuse the factors (samples in blocks of right-hand sides).  Measured on
-the 4 MP weighted problem (65 025 unknowns, loaded machine): factorisation 1.2 s + 32 exact solves
-1.1 s, against 4.2 s for 32 multigrid-CG solves to rtol 1e-3.  The factorisation grows like
-n^1.5 (and its memory like n log n): on a 24 MP run (373 751 unknowns) it took 15 s + 6.3 s for 32
-solves with 27.7 M non-zeros (1.2 GB peak), no faster than multigrid samples, so beyond
-~150 000 unknowns multigrid is used."""
+this many valid cells are factorised once (sparse LU in the grid's nested-dissection order,
+:func:`prepare_sparse`) and the main solve and all Monte Carlo samples reuse the factors (samples
+in blocks of 8 right-hand sides, exact).  Main solve + 32 samples, weighted benchmark
+(``benchmarks/bench_poisson.py --weighted-only``, same run, medians of 3): 512^2 2.2 s against
+3.8 s with multigrid samples, 611^2 (373 321 cells, a 24 MP run) 3.1 s against 5.5 s, 1000^2
+11.4 s against 14.9 s with a peak of +1.7 GB (+0.6 GB at 611^2); larger problems (not measured)
+use multigrid.  Before, with SuperLU's minimum-degree ordering, this limit was 150 000 cells
+(factorising 373 751 cells took 15 s on the loaded machine; 611^2 on the idle one: 2.5 s against
+1.4 s in nested-dissection order).  Tried and not adopted: CHOLMOD's supernodal Cholesky (wheel
+``cholespy`` 2.2.0, which bundles the reference BLAS): 3.7 s to factorise 611^2, main solve + 32
+samples 4.4 s against 5.3 s with multigrid samples in the same run."""
 
 
 def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, method, *, samples=False):
@@ -810,7 +873,8 @@ def integrate_gradient_uncertainty(
 
     Cost: the solver is set up once.  With ``method="auto"`` a problem of
     at most :data:`MC_DIRECT_MAX_UNKNOWNS` cells that needs an iterative
-    solver is factorised once (sparse LU) and the samples are solved
+    solver is factorised once (sparse LU in nested-dissection order) and
+    the samples are solved
     exactly, 8 right-hand sides at a time; larger ones use multigrid (no
     failing-CG detour, see :data:`PCG_MAX_WEIGHT_SPREAD`) and every sample
     is solved only to the relative residual ``rtol`` (default
