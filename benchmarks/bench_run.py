@@ -129,10 +129,17 @@ def child(toml: str, t_spawn: float) -> None:
     from bos.config import load_experiment
 
     exp = load_experiment(toml)
+    preload = None
+    if exp.output.figures:  # as `bos run` does: matplotlib loads in the background while estimating
+        from cli.cmd_run import preload_when_estimating
+
+        preload = preload_when_estimating()
     stamps["ready"] = time.time()
 
     def progress(stage, fraction):
         stamps[f"{stage}:{fraction:g}"] = time.time()
+        if preload is not None:
+            preload(stage, fraction)
 
     result = pipeline.run_experiment(exp, progress=progress)
     stamps["computed"] = time.time()

@@ -1063,6 +1063,37 @@ def write_run_figures(data: Any, paths: Mapping[str, str | Path], *, line: Seque
     return _draw_jobs(jobs, draw, processes=processes, meanwhile=meanwhile)
 
 
+_CHILD_GRACE_S = 10.0
+"""Least time [s] the figure child is given after this process finished its share."""
+
+
+def _settle_before_fork() -> None:
+    """Leave no import half-done and no buffered output before ``os.fork``.
+
+    A module lock held by another thread at the fork stays locked in the
+    child for ever (seen: the background matplotlib import of ``bos run``
+    still running when the figures started, the child hung on its first
+    import).  So the background import is waited for, the modules drawing
+    needs are imported here, and the standard streams are flushed.
+    """
+    import sys
+    import threading
+
+    for t in threading.enumerate():
+        if t.name == "bos-preload-matplotlib" and t is not threading.current_thread():
+            t.join()
+    import matplotlib.backends.backend_agg  # noqa: F401
+    import matplotlib.colors  # noqa: F401
+    import matplotlib.figure  # noqa: F401
+    import PIL.PngImagePlugin  # noqa: F401
+
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError, AttributeError):
+            pass
+
+
 def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = None, meanwhile=None) -> list[Path]:
     """Run ``draw(key, path)`` for every job; with a second core, half of them in a forked process.
 
@@ -1071,7 +1102,8 @@ def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = No
     figures is drawn by a child made with ``fork`` (it shares the data, no
     copy, and starts in milliseconds) while this process draws the rest.
     Each figure is written atomically by whoever draws it; a figure the
-    child did not deliver (it failed or was killed) is drawn here afterwards,
+    child did not deliver (it failed, was killed, or was still not done
+    well after this process finished its share) is drawn here afterwards,
     so the result is the same as drawing all of them here.  4 MP planar run,
     four figures: 0.84-1.0 s -> 0.35-0.52 s (quiet 2-core machine).  Without
     ``fork`` (not Linux/macOS), with one core or ``processes=1``:
@@ -1079,48 +1111,60 @@ def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = No
     result file) runs here while the child draws; the child then takes one
     figure more than half.
     """
-    import multiprocessing as mp
     import sys
+    import time
 
     n = len(jobs)
     parallel = (processes is None or processes > 1) and n >= 2 and (os.cpu_count() or 1) >= 2 \
-        and "fork" in mp.get_all_start_methods()
+        and hasattr(os, "fork")
     if not parallel:
         if meanwhile is not None:
             meanwhile()
         return [draw(k, p) for k, p in jobs]
     split = min(n - 1, n // 2 + (1 if meanwhile is not None else 0))
     child_jobs, own_jobs = jobs[:split], jobs[split:]
-
-    def child() -> None:
+    _settle_before_fork()
+    t0 = time.monotonic()
+    try:
+        pid = os.fork()
+    except OSError:
+        return _draw_jobs(jobs, draw, processes=1, meanwhile=meanwhile)
+    if pid == 0:  # the child: draw, then leave at once (no clean-up of the parent's state)
+        code = 1
         try:
             for k, p in child_jobs:
                 draw(k, p)
+            code = 0
         except BaseException:  # noqa: BLE001 - no traceback from the child: the parent redraws
-            os._exit(1)
-
-    for stream in (sys.stdout, sys.stderr):  # nothing buffered may be written twice
-        try:
-            stream.flush()
-        except (OSError, ValueError, AttributeError):
             pass
-    proc = mp.get_context("fork").Process(target=child, daemon=True)
-    try:
-        proc.start()
-    except OSError:
-        return _draw_jobs(jobs, draw, processes=1, meanwhile=meanwhile)
+        finally:
+            os._exit(code)
+    exitcode = None
     try:
         if meanwhile is not None:
             meanwhile()
         for k, p in own_jobs:
             draw(k, p)
-        proc.join()
+        # the child has the same amount of work; a child that is far slower is stuck (a lock
+        # taken at the fork): it is killed and its figures are drawn here
+        deadline = time.monotonic() + max(_CHILD_GRACE_S, 5.0 * (time.monotonic() - t0))
+        while exitcode is None:
+            done, status = os.waitpid(pid, os.WNOHANG)
+            if done:
+                exitcode = os.waitstatus_to_exitcode(status)
+            elif time.monotonic() > deadline:
+                break
+            else:
+                time.sleep(0.005)
     finally:
-        if proc.is_alive():  # interrupted here: the child stops too
-            proc.terminate()
-            proc.join()
+        if exitcode is None:  # interrupted, failed here, or stuck: the child stops too
+            try:
+                os.kill(pid, 9)
+                os.waitpid(pid, 0)
+            except OSError:
+                pass
     for k, p in child_jobs:
-        if proc.exitcode != 0 or not Path(p).is_file():
+        if exitcode != 0 or not Path(p).is_file():
             draw(k, p)
     return [Path(p) for _, p in jobs]
 

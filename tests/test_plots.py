@@ -391,3 +391,27 @@ def test_a_figure_the_child_fails_to_draw_is_drawn_here_without_a_traceback(tmp_
     assert sorted(drawn_here) == ["0", "1", "2"]
     assert [p.read_text() for _, p in jobs] == ["0", "1", "2"]
     assert "Traceback" not in capfd.readouterr().err
+
+
+def test_a_stuck_figure_child_is_killed_and_its_figures_drawn_here(tmp_path, monkeypatch):
+    if not _fork_available():
+        pytest.skip("needs fork and two cores")
+    import os
+    import time
+
+    from bos import plots
+
+    monkeypatch.setattr(plots, "_CHILD_GRACE_S", 0.5)
+    parent = os.getpid()
+
+    def draw(key, path):
+        if os.getpid() != parent:
+            time.sleep(120)  # a child that never finishes
+        path.write_text(key)
+        return path
+
+    jobs = [(str(k), tmp_path / f"f{k}.txt") for k in range(4)]
+    t0 = time.monotonic()
+    assert plots._draw_jobs(jobs, draw) == [p for _, p in jobs]
+    assert time.monotonic() - t0 < 30
+    assert [p.read_text() for _, p in jobs] == ["0", "1", "2", "3"]
