@@ -45,6 +45,7 @@ Braess (1995), Computing 55:379 (aggregation multigrid with over-correction) [M]
 from __future__ import annotations
 
 import copy
+import os
 from typing import Callable
 
 import numpy as np
@@ -957,23 +958,56 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     acc = np.zeros(shape)
     block = getattr(solve, "block", None)  # direct solver: blocks of right-hand sides, exact
     chunk = 8 if block is not None else 1
+
+    def right_hand_sides(count):
+        rhs = []
+        for _ in range(count):
+            noise.gy = sy * rng.standard_normal(shape)
+            noise.gx = sx * rng.standard_normal(shape)
+            rhs.append(_grid_system(noise, rhs_only=True))
+        return rhs
+
+    def add(phis, done):
+        for phi in phis:
+            phi = level(phi)
+            phi *= phi
+            np.add(acc, phi, out=acc)
+        if progress is not None:
+            progress(done / n_samples)
+
+    def scattered(x):
+        return [_scatter(pb, x[:, j], solve.index) for j in range(x.shape[1])]
+
+    # SuperLU's triangular solves release the interpreter lock: with two cores the blocks are
+    # solved in a second thread while this one builds the next right-hand sides (pipelined,
+    # results added in sample order, so bit-identical to one thread).  Quiet 2-core machine,
+    # 611 x 611 weighted problem: see docs/performance.md.
+    threads = min(2, os.cpu_count() or 1) if block is not None else 1
     with threadpool_limits(limits=1, user_api="blas"):
-        for k0 in range(0, n_samples, chunk):
-            rhs = []
-            for _ in range(min(chunk, n_samples - k0)):
-                noise.gy = sy * rng.standard_normal(shape)
-                noise.gx = sx * rng.standard_normal(shape)
-                rhs.append(_grid_system(noise, rhs_only=True))
-            if block is not None:
-                x = block(np.stack([r[pb.valid] for r in rhs], axis=1))
-                phis = [_scatter(pb, x[:, j], solve.index) for j in range(x.shape[1])]
-            else:
-                phis = [solve(r, rtol) for r in rhs]
-            for phi in phis:
-                phi = level(phi)
-                phi *= phi
-                acc += phi
-            if progress is not None:
-                progress(min(k0 + chunk, n_samples) / n_samples)
+        if threads > 1:
+            from collections import deque
+            from concurrent.futures import ThreadPoolExecutor
+
+            with ThreadPoolExecutor(threads) as ex:
+                pending: deque = deque()
+                for k0 in range(0, n_samples, chunk):
+                    rhs = right_hand_sides(min(chunk, n_samples - k0))
+                    b = np.stack([r[pb.valid] for r in rhs], axis=1)
+                    del rhs
+                    pending.append((min(k0 + chunk, n_samples), ex.submit(block, b)))
+                    while len(pending) > threads:
+                        done, fut = pending.popleft()
+                        add(scattered(fut.result()), done)
+                while pending:
+                    done, fut = pending.popleft()
+                    add(scattered(fut.result()), done)
+        else:
+            for k0 in range(0, n_samples, chunk):
+                rhs = right_hand_sides(min(chunk, n_samples - k0))
+                if block is not None:
+                    phis = scattered(block(np.stack([r[pb.valid] for r in rhs], axis=1)))
+                else:
+                    phis = [solve(r, rtol) for r in rhs]
+                add(phis, min(k0 + chunk, n_samples))
     # the samples' mean is known to be zero (linear map of zero-mean noise): divide by n, not n - 1
     return np.sqrt(acc / n_samples)
