@@ -235,3 +235,27 @@ def check_output_set(result_path: str | os.PathLike, run_id: str | None) -> list
         elif fname == p.name and file_sha256(f) != digest:
             out.append(f"{fname} differs from the file recorded in {manifest_path.name}")
     return out
+
+
+def output_set_members(directory: str | os.PathLike) -> dict[str, str]:
+    """File name -> name of the output set whose manifest (``*-run.json``) in ``directory`` lists it.
+
+    Lets a command that writes beside a finished run refuse to overwrite the
+    run's own files (which would leave the set mixed: its manifest would no
+    longer match).  Unreadable manifests are skipped.
+    """
+    import json
+
+    out: dict[str, str] = {}
+    d = Path(directory)
+    if not d.is_dir():
+        return out
+    for m in sorted(d.glob(f"*{MANIFEST_SUFFIX}")):
+        try:
+            manifest = json.loads(m.read_text())
+            files = dict(manifest["files"])
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+        for fname in files:
+            out.setdefault(str(fname), m.name[:-len(MANIFEST_SUFFIX)])
+    return out

@@ -240,9 +240,19 @@ def register(app: typer.Typer) -> None:
         from bos import store
         from bos.schlieren.virtual import auto_cutoff_deflection, write_virtual_views
 
+        from bos._io import output_set_members
+        from bos.errors import InputError
+
         data = store.read_result(result)
         d = out if out is not None else result.parent
         base = name or result.stem
+        owned = {f: s for f, s in output_set_members(d).items()
+                 if f.startswith(f"{base}-knife-") or f in (f"{base}-circular.png", f"{base}-colour.png",
+                                                             f"{base}-colour-key.png")}
+        if owned:
+            f, s = sorted(owned.items())[0]
+            raise InputError(f"{d / f} belongs to the output set of run '{s}' (its manifest {s}-run.json): "
+                             "give --name or --out so the run's files are not overwritten")
         ec = range_urad * 1e-6 if range_urad is not None else None
         if ec is None and "deflection_y" in data.variables and "deflection_x" in data.variables:
             ec = auto_cutoff_deflection(data.variables["deflection_y"].data, data.variables["deflection_x"].data)

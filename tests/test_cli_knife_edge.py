@@ -169,3 +169,29 @@ def test_virtual_knife_edge_command(tmp_path):
     assert img[58, 40].astype(int) - img[58, 118].astype(int) > 50
     bad = invoke("virtual-knife-edge", tmp_path / "missing.h5")
     _one_line_error(bad, "not found")
+
+
+def test_virtual_knife_edge_does_not_overwrite_a_runs_own_views(tmp_path):
+    """A run made with --virtual-knife-edge lists <name>-knife-*.png in its manifest: rewriting them
+    with other settings would leave the run's output set mixed, so it is refused."""
+    from bos import store
+    from bos._io import file_sha256
+
+    rows, cols = np.arange(2, 60, 4.0), np.arange(2, 80, 4.0)
+    r, c = np.meshgrid(rows, cols, indexing="ij")
+    e = 1e-4 * np.exp(-((r - 30) ** 2 + (c - 40) ** 2) / 20.0 ** 2)
+    var = (("y", "x"), e, {"units": "rad", "long_name": "deflection"})
+    coords = {"y": ((rows - 30) * 1e-4, {"units": "m", "long_name": "y"}),
+              "x": ((cols - 40) * 1e-4, {"units": "m", "long_name": "x"}),
+              "row_px": {"dims": ("y",), "data": rows, "attrs": {"units": "px", "long_name": "row"}},
+              "col_px": {"dims": ("x",), "data": cols, "attrs": {"units": "px", "long_name": "col"}}}
+    res = store.write_result(tmp_path / "run.nc", coords=coords, variables={"deflection_y": var, "deflection_x": var})
+    own = tmp_path / "run-knife-90deg.png"
+    own.write_bytes(b"the run's own picture")
+    (tmp_path / "run-run.json").write_text(json.dumps(
+        {"run_id": "r1", "name": "run", "files": {"run.nc": file_sha256(res), own.name: file_sha256(own)}}))
+    _one_line_error(invoke("virtual-knife-edge", res, "--knife", "vertical"), "output set")
+    assert own.read_bytes() == b"the run's own picture"
+    ok = invoke("virtual-knife-edge", res, "--knife", "vertical", "--name", "again", "--json")
+    assert ok.exit_code == 0, ok.output
+    assert (tmp_path / "again-knife-90deg.png").is_file() and own.read_bytes() == b"the run's own picture"
