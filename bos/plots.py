@@ -1105,9 +1105,8 @@ def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = No
     child did not deliver (it failed, was killed, or was still not done
     well after this process finished its share) is drawn here afterwards,
     so the result is the same as drawing all of them here.  4 MP planar run,
-    four figures: 0.84-1.0 s -> 0.35-0.52 s (quiet 2-core machine).  Without
-    ``fork`` (not Linux/macOS), with one core or ``processes=1``:
-    sequential.  ``meanwhile`` (the caller's other work, e.g. writing the
+    four figures: 0.84-1.0 s -> 0.35-0.52 s (quiet 2-core machine).  Other
+    systems than Linux, one core or ``processes=1``: sequential.  ``meanwhile`` (the caller's other work, e.g. writing the
     result file) runs here while the child draws; the child then takes one
     figure more than half.
     """
@@ -1115,8 +1114,10 @@ def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = No
     import time
 
     n = len(jobs)
+    # Linux only: on macOS a forked child of a process that loaded system frameworks may abort
+    # (the reason Python's default start method there is spawn)
     parallel = (processes is None or processes > 1) and n >= 2 and (os.cpu_count() or 1) >= 2 \
-        and hasattr(os, "fork")
+        and hasattr(os, "fork") and sys.platform.startswith("linux")
     if not parallel:
         if meanwhile is not None:
             meanwhile()
