@@ -202,6 +202,17 @@ def recover_output_sets(directory: str | os.PathLike, name: str) -> None:
             shutil.rmtree(staging, ignore_errors=True)
 
 
+def _manifest_files(path: Path) -> tuple[dict, dict[str, str]] | None:
+    """(manifest, file name -> SHA-256) of a ``*-run.json``, or None when it is unreadable."""
+    import json
+
+    try:
+        manifest = json.loads(Path(path).read_text())
+        return manifest, dict(manifest["files"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
 def check_output_set(result_path: str | os.PathLike, run_id: str | None) -> list[str]:
     """Warnings when the files beside a result are not all from its run.
 
@@ -209,19 +220,16 @@ def check_output_set(result_path: str | os.PathLike, run_id: str | None) -> list
     the same run id, and every file it lists must exist with the recorded
     SHA-256.
     """
-    import json
-
     p = Path(result_path)
     stem = p.stem
     manifest_path = p.with_name(f"{stem}{MANIFEST_SUFFIX}")
     if not manifest_path.exists():
         return [] if run_id is None else [f"no run manifest ({manifest_path.name}) beside the result: "
                                           "cannot check that the files beside it belong to the same run"]
-    try:
-        manifest = json.loads(manifest_path.read_text())
-        files = dict(manifest["files"])
-    except (OSError, ValueError, KeyError, TypeError):
+    read = _manifest_files(manifest_path)
+    if read is None:
         return [f"the run manifest {manifest_path.name} is unreadable"]
+    manifest, files = read
     out = []
     if run_id is not None and manifest.get("run_id") != run_id:
         out.append(f"the files beside {p.name} belong to another run ({manifest.get('run_id')}, "
@@ -244,18 +252,12 @@ def output_set_members(directory: str | os.PathLike) -> dict[str, str]:
     run's own files (which would leave the set mixed: its manifest would no
     longer match).  Unreadable manifests are skipped.
     """
-    import json
-
     out: dict[str, str] = {}
     d = Path(directory)
     if not d.is_dir():
         return out
     for m in sorted(d.glob(f"*{MANIFEST_SUFFIX}")):
-        try:
-            manifest = json.loads(m.read_text())
-            files = dict(manifest["files"])
-        except (OSError, ValueError, KeyError, TypeError):
-            continue
-        for fname in files:
+        read = _manifest_files(m)
+        for fname in (read[1] if read is not None else ()):
             out.setdefault(str(fname), m.name[:-len(MANIFEST_SUFFIX)])
     return out

@@ -1063,6 +1063,25 @@ def write_run_figures(data: Any, paths: Mapping[str, str | Path], *, line: Seque
     return _draw_jobs(jobs, draw, processes=processes, meanwhile=meanwhile)
 
 
+PRELOAD_THREAD = "bos-preload-matplotlib"
+
+
+def preload_matplotlib() -> None:
+    """Import matplotlib in a background thread (its import costs ~0.5-3 s; a run starts it while
+    the estimator, which leaves the interpreter lock free most of the time, is busy).
+    :func:`_draw_jobs` waits for it before forking."""
+    import threading
+
+    def work():
+        try:
+            import matplotlib.backends.backend_agg  # noqa: F401
+            import matplotlib.figure  # noqa: F401
+        except Exception:  # noqa: BLE001 - the figure stage reports real problems itself
+            pass
+
+    threading.Thread(target=work, name=PRELOAD_THREAD, daemon=True).start()
+
+
 _CHILD_GRACE_S = 10.0
 """Least time [s] the figure child is given after this process finished its share."""
 
@@ -1080,7 +1099,7 @@ def _settle_before_fork() -> None:
     import threading
 
     for t in threading.enumerate():
-        if t.name == "bos-preload-matplotlib" and t is not threading.current_thread():
+        if t.name == PRELOAD_THREAD and t is not threading.current_thread():
             t.join()
     import matplotlib.backends.backend_agg  # noqa: F401
     import matplotlib.colors  # noqa: F401
@@ -1106,9 +1125,10 @@ def _draw_jobs(jobs: list[tuple[str, Path]], draw, *, processes: int | None = No
     well after this process finished its share) is drawn here afterwards,
     so the result is the same as drawing all of them here.  4 MP planar run,
     four figures: 0.84-1.0 s -> 0.35-0.52 s (quiet 2-core machine).  Other
-    systems than Linux, one core or ``processes=1``: sequential.  ``meanwhile`` (the caller's other work, e.g. writing the
-    result file) runs here while the child draws; the child then takes one
-    figure more than half.
+    systems than Linux, one core or ``processes=1``: sequential.
+    ``meanwhile`` (the caller's other work, e.g. writing the result file)
+    runs here while the child draws; the child then takes one figure more
+    than half.
     """
     import sys
     import time

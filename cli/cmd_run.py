@@ -107,23 +107,8 @@ def make_progress():
     return progress, callback
 
 
-def _preload_matplotlib() -> None:
-    """Import matplotlib in a background thread while the estimator runs (its import costs
-    ~1-3 s and is needed only for the figures at the end)."""
-    import threading
-
-    def work():
-        try:
-            import matplotlib.backends.backend_agg  # noqa: F401
-            import matplotlib.figure  # noqa: F401
-        except Exception:  # noqa: BLE001 - the figure stage reports real problems itself
-            pass
-
-    threading.Thread(target=work, name="bos-preload-matplotlib", daemon=True).start()
-
-
 def preload_when_estimating():
-    """A progress callback that starts :func:`_preload_matplotlib` when the displacement stage starts.
+    """A progress callback that starts :func:`bos.plots.preload_matplotlib` when the displacement stage starts.
 
     Not earlier: an import running beside the image reading slowed the reading
     (4 MP pair 0.15 -> 0.64 s), while the estimator leaves the interpreter lock
@@ -134,7 +119,9 @@ def preload_when_estimating():
     def on_stage(stage, fraction):
         if stage == "displacement" and not started:
             started.append(True)
-            _preload_matplotlib()
+            from bos.plots import preload_matplotlib
+
+            preload_matplotlib()
     return on_stage
 
 
