@@ -108,7 +108,7 @@ def resume_case(tmp_path_factory):
     return d, json.loads(full.stdout)["series_file"]
 
 
-RESUME_FRAMES = 6
+RESUME_FRAMES = 12  # enough that the kill lands before the last frame now that frames take ~0.1 s
 
 
 @pytest.mark.parametrize("how", ["sigkill", "ctrl-c"])
