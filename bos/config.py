@@ -171,7 +171,7 @@ SCHEMA: dict[str, dict[str, Spec]] = {
                                  help="where the gas is ambient: 'edges', 'left', 'right', 'top', 'bottom' "
                                       "or [row0, row1, col0, col1] in pixels"),
         "weighted": Spec("bool", True, help="weight the least-squares integration by 1/sigma^2"),
-        "solver": Spec("str", "auto", choices=("auto", "dct", "sparse", "multigrid", "pcg"),
+        "solver": Spec("str", "auto", choices=("auto", "dct", "sparse", "direct", "multigrid", "pcg"),
                        help="Poisson solver"),
     },
     "output": {

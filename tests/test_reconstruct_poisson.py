@@ -81,7 +81,7 @@ def test_fast_solvers_equal_scipy_sparse_lu(edges):
     gy = gy + 0.05 * rng.standard_normal(gy.shape)  # non-integrable data: a true least-squares problem
     d = edge_values(x, edges) or None
     ref = integrate_gradient(gy, gx, spacing_m=h, dirichlet=d, method="sparse")
-    for m in ("dct", "pcg", "multigrid"):
+    for m in ("dct", "pcg", "multigrid", "direct"):
         assert np.abs(integrate_gradient(gy, gx, spacing_m=h, dirichlet=d, method=m) - ref).max() < 1e-8
 
 
@@ -129,7 +129,7 @@ def test_masked_solution_is_the_dense_least_squares_solution():
     sol = np.linalg.lstsq(np.array(rows), np.array(rhs), rcond=None)[0]
     want = np.full((ny, nx), np.nan)
     want[~mask] = sol - sol.mean()
-    for m in ("pcg", "multigrid", "sparse"):
+    for m in ("pcg", "multigrid", "sparse", "direct"):
         got = integrate_gradient(gy, gx, spacing_m=h, mask=mask, weights=(wy, wx), method=m)
         assert np.nanmax(np.abs(got - want)) < 1e-8
 
@@ -183,7 +183,7 @@ def test_monte_carlo_uncertainty_matches_linear_propagation():
 
 
 def test_registry_names():
-    assert {"dct", "pcg", "multigrid", "sparse"} <= set(SOLVERS)
+    assert {"dct", "pcg", "multigrid", "sparse", "direct"} <= set(SOLVERS)
 
 
 @pytest.mark.parametrize("kwargs, match", [
@@ -245,3 +245,7 @@ def test_weighted_multigrid_with_zero_weights_prints_nothing_and_equals_sparse_l
     ref = integrate_gradient(gy, gx, method="sparse", **opts)
     assert np.isfinite(got).sum() == np.isfinite(ref).sum() > 0.99 * ny * nx
     assert np.nanmax(np.abs(got - ref)) < 1e-7 * np.nanmax(np.abs(ref))  # measured 4e-9 (CG rtol 1e-9)
+    # the grid Cholesky (separately pinned parts, zero-weight faces) against the same reference
+    direct = integrate_gradient(gy, gx, method="direct", **opts)
+    assert np.array_equal(np.isfinite(direct), np.isfinite(ref))
+    assert np.nanmax(np.abs(direct - ref)) < 1e-9 * np.nanmax(np.abs(ref))

@@ -509,6 +509,44 @@ def prepare_sparse(pb: _Problem, *, ordering: str = "nested_dissection"):
     return solve
 
 
+@_register("direct")
+def prepare_direct(pb: _Problem):
+    """Exact solve by nested dissection on the grid (the project's own multifrontal Cholesky).
+
+    The normal equations (free constants pinned, as for ``"sparse"``) are
+    factorised once by :class:`bos.reconstruct._nested.GridCholesky`: the grid
+    is cut by lines into equal boxes and each level of boxes is eliminated by
+    batched dense linear algebra; invalid cells are decoupled unit rows.
+    Factor and solve cost are set out in :data:`MC_DIRECT_MAX_UNKNOWNS`.  Like
+    ``"sparse"`` the returned function also solves blocks of right-hand sides
+    (``solve.block``, compressed numbering ``solve.index``).
+    """
+    from ._nested import GridCholesky
+
+    A, _, index = _sparse_system(pb)
+    ny, nx = pb.shape
+    diag = np.ones(pb.shape)
+    diag[pb.valid] = A.diagonal()
+    offs = []
+    for ia, ib in ((index[:-1], index[1:]), (index[:, :-1], index[:, 1:])):
+        off = np.zeros(ia.shape)
+        ok = (ia >= 0) & (ib >= 0)
+        off[ok] = np.asarray(A[ia[ok], ib[ok]]).ravel()
+        offs.append(off)
+    del A
+    chol = GridCholesky(diag, offs[0], offs[1])
+    cells = np.flatnonzero(pb.valid.ravel())  # compressed numbering = row-major order of the valid cells
+
+    def block(b):
+        full = np.zeros((ny * nx, b.shape[1]))
+        full[cells] = b
+        return chol.solve(full)[cells]
+
+    solve = _on_valid(pb, index, lambda b, rtol: block(b[:, None])[:, 0])
+    solve.block, solve.index = block, index
+    return solve
+
+
 def _aggregate_2x2(valid):
     """Piecewise-constant prolongation onto 2 x 2 blocks of the grid, and the coarse valid mask.
 
@@ -762,11 +800,20 @@ def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, met
     if method == "auto":
         method = auto_method(pb)
         if samples and method != "dct" and int(pb.valid.sum()) <= MC_DIRECT_MAX_UNKNOWNS:
-            method = "sparse"
+            method = "direct" if _compiler_available() else "sparse"
     if method not in SOLVERS:
         raise InputError(f"unknown integration method {method!r}; choose from {', '.join(SOLVERS)}")
     pb.method = method
     return pb, SOLVERS[method](pb)
+
+
+def _compiler_available() -> bool:
+    """numba (which compiles the kernels of the ``"direct"`` solver) can be imported."""
+    try:
+        import numba  # noqa: F401
+    except Exception:  # pragma: no cover - numba is a dependency; a broken install falls back to SuperLU
+        return False
+    return True
 
 
 def auto_method(pb: _Problem) -> str:
@@ -933,7 +980,16 @@ def integrate_gradient_with_uncertainty(
     pb, solve = _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, method, samples=True)
     _region(reference_region, pb.shape)
     n_steps = n_samples + 1
-    phi = _set_level(pb, solve(_grid_system(pb, rhs_only=True)), reference_region, reference_value)
+    rhs = _grid_system(pb, rhs_only=True)
+    if getattr(solve, "block", None) is not None:  # direct solver: the main solve rides with the samples
+        if progress is not None:
+            progress(1.0 / n_steps)  # the factorisation is done
+        step = None if progress is None else (lambda f: progress((1.0 + f * n_samples) / n_steps))
+        sigma, x = _monte_carlo(pb, solve, sigma_y, sigma_x, reference_region, n_samples=n_samples, seed=seed,
+                                rtol=rtol, progress=step, lead=rhs[pb.valid])
+        phi = _set_level(pb, _scatter(pb, x, solve.index), reference_region, reference_value)
+        return phi, sigma, pb.method
+    phi = _set_level(pb, solve(rhs), reference_region, reference_value)
     if progress is not None:
         progress(1.0 / n_steps)
     step = None if progress is None else (lambda f: progress((1.0 + f * n_samples) / n_steps))
@@ -942,8 +998,28 @@ def integrate_gradient_with_uncertainty(
     return phi, sigma, pb.method
 
 
-def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_samples, seed, rtol, progress):
-    """Root mean square of ``n_samples`` solutions for Gaussian gradient noise (zero-mean exactly)."""
+def _random_signs(rng, shape):
+    """Independent random signs +-1 (Rademacher) as floats, from the generator's raw bytes.
+
+    Unit variance like a standard normal but ~10x cheaper to draw (611^2: 0.4 ms of bytes against
+    4 ms of normals; 64 draws per 32-sample uncertainty), and the diagonal estimator's variance is
+    no larger: Var(x_i^2) = 2 (sum_k T_ik^2)^2 - 2 sum_k T_ik^4 against 2 (sum_k T_ik^2)^2.
+    """
+    n = int(np.prod(shape))
+    bits = np.unpackbits(np.frombuffer(rng.bytes((n + 7) // 8), dtype=np.uint8), count=n)
+    out = bits.reshape(shape).astype(float)
+    out *= -2.0
+    out += 1.0
+    return out
+
+
+def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_samples, seed, rtol, progress,
+                 lead=None):
+    """Root mean square of ``n_samples`` solutions for random gradient noise (zero-mean exactly).
+
+    ``lead``: a right-hand side (compressed numbering) solved in the first block of a direct
+    solver; then returns ``(sigma, solution of lead)``.
+    """
     from threadpoolctl import threadpool_limits
 
     if n_samples < 2:
@@ -957,13 +1033,13 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     sx = np.where(pb.valid, np.nan_to_num(np.broadcast_to(np.asarray(sigma_x, dtype=float), shape)), 0.0)
     acc = np.zeros(shape)
     block = getattr(solve, "block", None)  # direct solver: blocks of right-hand sides, exact
-    chunk = 8 if block is not None else 1
+    chunk = 16 if block is not None else 1
 
     def right_hand_sides(count):
         rhs = []
         for _ in range(count):
-            noise.gy = sy * rng.standard_normal(shape)
-            noise.gx = sx * rng.standard_normal(shape)
+            noise.gy = sy * _random_signs(rng, shape)
+            noise.gx = sx * _random_signs(rng, shape)
             rhs.append(_grid_system(noise, rhs_only=True))
         return rhs
 
@@ -977,6 +1053,14 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
 
     def scattered(x):
         return [_scatter(pb, x[:, j], solve.index) for j in range(x.shape[1])]
+
+    lead_x = []
+
+    def take_lead(x):
+        if lead is not None and not lead_x:
+            lead_x.append(x[:, 0].copy())
+            return x[:, 1:]
+        return x
 
     # SuperLU's triangular solves release the interpreter lock: with two cores the blocks are
     # solved in a second thread while this one builds the next right-hand sides (pipelined,
@@ -993,21 +1077,31 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
                 for k0 in range(0, n_samples, chunk):
                     rhs = right_hand_sides(min(chunk, n_samples - k0))
                     b = np.stack([r[pb.valid] for r in rhs], axis=1)
+                    if k0 == 0 and lead is not None:
+                        b = np.column_stack([lead, b])
                     del rhs
                     pending.append((min(k0 + chunk, n_samples), ex.submit(block, b)))
                     while len(pending) > threads:
                         done, fut = pending.popleft()
-                        add(scattered(fut.result()), done)
+                        add(scattered(take_lead(fut.result())), done)
                 while pending:
                     done, fut = pending.popleft()
-                    add(scattered(fut.result()), done)
+                    add(scattered(take_lead(fut.result())), done)
         else:
             for k0 in range(0, n_samples, chunk):
                 rhs = right_hand_sides(min(chunk, n_samples - k0))
                 if block is not None:
-                    phis = scattered(block(np.stack([r[pb.valid] for r in rhs], axis=1)))
+                    b = np.stack([r[pb.valid] for r in rhs], axis=1)
+                    if k0 == 0 and lead is not None:
+                        b = np.column_stack([lead, b])
+                    phis = scattered(take_lead(block(b)))
                 else:
                     phis = [solve(r, rtol) for r in rhs]
                 add(phis, min(k0 + chunk, n_samples))
     # the samples' mean is known to be zero (linear map of zero-mean noise): divide by n, not n - 1
-    return np.sqrt(acc / n_samples)
+    sigma = np.sqrt(acc / n_samples)
+    if lead is not None:
+        if not lead_x:
+            raise ValueError("a lead right-hand side needs a direct (block) solver")
+        return sigma, lead_x[0]
+    return sigma

@@ -1,0 +1,97 @@
+"""Compiled per-box kernels of :mod:`bos.reconstruct._nested` (numba, cached on disk).
+
+One call handles a range of boxes of one level and edge signature: the
+loops over boxes, front assembly and extend-add run as compiled code, the
+dense factorisation and products call LAPACK/BLAS through numba.  The
+kernels release the interpreter lock, so two threads can work on two halves
+of a level.  Measured against the same algorithm written with batched numpy
+operations (611 x 611 weighted benchmark): see docs/performance.md.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+
+@njit(cache=True, nogil=True)
+def factor_boxes(lo, hi, origins, pI, pJ, pK, pR, D, OY, OX, nS, nB,
+                 U0, pos0, map0, U1, pos1, map1, Linv, W, U):  # pragma: no cover - compiled
+    """Eliminate the separators of boxes ``lo:hi``: Linv = L^-1, W = L^-1 F_SB, U = F_BB - W^T W.
+
+    Pattern entries ``p``: front slot ``(pI[p], pJ[p])`` takes the value of array
+    ``pK[p]`` (0: diagonal, 1: vertical, 2: horizontal coupling) at flat cell
+    ``origin + pR[p]``.  Children k = 0, 1 give their Schur complements
+    ``Uk[posk[b]]`` over slots ``mapk`` of the front; ``posk`` is empty at the leaves.
+    """
+    nf = nS + nB
+    F = np.empty((nf, nf))
+    for b in range(lo, hi):
+        F[:, :] = 0.0
+        o = origins[b]
+        for p in range(pI.shape[0]):
+            k = pK[p]
+            c = o + pR[p]
+            F[pI[p], pJ[p]] = D[c] if k == 0 else (OY[c] if k == 1 else OX[c])
+        if pos0.shape[0]:
+            u = U0[pos0[b]]
+            for i in range(map0.shape[0]):
+                mi = map0[i]
+                for j in range(map0.shape[0]):
+                    F[mi, map0[j]] += u[i, j]
+            u = U1[pos1[b]]
+            for i in range(map1.shape[0]):
+                mi = map1[i]
+                for j in range(map1.shape[0]):
+                    F[mi, map1[j]] += u[i, j]
+        L = np.linalg.cholesky(np.ascontiguousarray(F[:nS, :nS]))
+        Li = np.linalg.inv(L)
+        Linv[b] = Li
+        if nB:
+            w = Li @ np.ascontiguousarray(F[:nS, nS:])
+            W[b] = w
+            U[b] = F[nS:, nS:] - w.T @ w
+    return 0
+
+
+@njit(cache=True, nogil=True)
+def forward_boxes(lo, hi, Sidx, r, nB, up0, pos0, map0, up1, pos1, map1, Linv, W, y, up):  # pragma: no cover
+    """Forward substitution for boxes ``lo:hi``: y = L^-1 r_S, up = r_B - W^T y (per right-hand side)."""
+    nS = Sidx.shape[1]
+    k = r.shape[1]
+    front = np.empty((nS + nB, k))
+    for b in range(lo, hi):
+        front[:, :] = 0.0
+        for i in range(nS):
+            front[i] = r[Sidx[b, i]]
+        if pos0.shape[0]:
+            u = up0[pos0[b]]
+            for i in range(map0.shape[0]):
+                front[map0[i]] += u[i]
+            u = up1[pos1[b]]
+            for i in range(map1.shape[0]):
+                front[map1[i]] += u[i]
+        yb = Linv[b] @ np.ascontiguousarray(front[:nS])
+        y[b] = yb
+        if nB:
+            up[b] = front[nS:] - W[b].T @ yb
+    return 0
+
+
+@njit(cache=True, nogil=True)
+def backward_boxes(lo, hi, Sidx, Bidx, x, Linv, W, y):  # pragma: no cover - compiled
+    """Back substitution for boxes ``lo:hi``: x_S = L^-T (y - W x_B), written into ``x``."""
+    nS = Sidx.shape[1]
+    nB = Bidx.shape[1]
+    k = x.shape[1]
+    xb = np.empty((nB, k))
+    for b in range(lo, hi):
+        yb = y[b].copy()
+        if nB:
+            for i in range(nB):
+                xb[i] = x[Bidx[b, i]]
+            yb -= W[b] @ xb
+        xs = Linv[b].T @ yb
+        for i in range(nS):
+            x[Sidx[b, i]] = xs[i]
+    return 0

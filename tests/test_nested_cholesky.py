@@ -1,0 +1,84 @@
+"""The grid Cholesky solver (nested dissection with dense fronts, bos.reconstruct._nested).
+
+Reference: scipy's sparse LU (``scipy.sparse.linalg.spsolve``, SuperLU) on the same
+5-point matrices, assembled independently here with scipy.sparse.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from bos.errors import InputError
+from bos.reconstruct._nested import GridCholesky, _padded
+
+
+def five_point(ny, nx, seed, *, decoupled=None):
+    """Random SPD 5-point matrix (couplings spanning x100, diagonally dominant by a small margin)."""
+    rng = np.random.default_rng(seed)
+    cy = rng.uniform(0.1, 10, (ny - 1, nx))
+    cx = rng.uniform(0.1, 10, (ny, nx - 1))
+    if decoupled is not None:  # unit rows with no coupling (how invalid cells enter the solver)
+        cy[decoupled[:-1] | decoupled[1:]] = 0.0
+        cx[decoupled[:, :-1] | decoupled[:, 1:]] = 0.0
+    d = np.zeros((ny, nx))
+    d[:-1] += cy
+    d[1:] += cy
+    d[:, :-1] += cx
+    d[:, 1:] += cx
+    d += rng.uniform(1e-3, 0.1, (ny, nx))
+    if decoupled is not None:
+        d[decoupled] = 1.0
+    idx = np.arange(ny * nx).reshape(ny, nx)
+    rows = np.r_[idx.ravel(), idx[:-1].ravel(), idx[1:].ravel(), idx[:, :-1].ravel(), idx[:, 1:].ravel()]
+    cols = np.r_[idx.ravel(), idx[1:].ravel(), idx[:-1].ravel(), idx[:, 1:].ravel(), idx[:, :-1].ravel()]
+    vals = np.r_[d.ravel(), -cy.ravel(), -cy.ravel(), -cx.ravel(), -cx.ravel()]
+    A = sp.csc_matrix((vals, (rows, cols)), shape=(ny * nx, ny * nx))
+    return d, -cy, -cx, A
+
+
+@pytest.mark.parametrize("shape", [(1, 5), (2, 2), (3, 7), (14, 18), (17, 9), (40, 33), (100, 7), (64, 129)])
+def test_solves_equal_scipy_sparse_lu(shape):
+    d, oy, ox, A = five_point(*shape, seed=sum(shape))
+    chol = GridCholesky(d, oy, ox)
+    b = np.random.default_rng(1).standard_normal((A.shape[0], 3))
+    want = spla.spsolve(A, b)
+    scale = np.abs(want).max()
+    assert np.abs(chol.solve(b) - want).max() < 1e-10 * scale  # measured ~1e-14
+    assert np.abs(chol.solve(b[:, 1]) - want[:, 1]).max() < 1e-10 * scale  # one right-hand side
+
+
+def test_decoupled_cells_and_padding():
+    ny, nx = 37, 52  # padded to 47 x 53: cells the solver adds must not leak into the solution
+    rng = np.random.default_rng(3)
+    off = rng.random((ny, nx)) < 0.1
+    off[:, 30] = True
+    d, oy, ox, A = five_point(ny, nx, seed=2, decoupled=off)
+    b = rng.standard_normal(ny * nx)
+    got = GridCholesky(d, oy, ox).solve(b)
+    want = spla.spsolve(A, b)
+    assert np.abs(got - want).max() < 1e-10 * np.abs(want).max()
+    assert np.allclose(got[off.ravel()], b[off.ravel()])  # unit rows
+
+
+def test_padded_sizes_are_small():
+    # (L + 1) 2^k - 1 with leaves L <= 8: the sizes (L + 1) 2^k step by at most 12/10, so the padding
+    # stays below 20 % per axis (611 -> 639, 1000 -> 1023)
+    for n in range(1, 3000, 7):
+        size, k = _padded(n)
+        leaf = (size + 1) // 2**k - 1
+        assert size >= n and 1 <= leaf <= 8 and (leaf + 1) * 2**k - 1 == size
+        assert size + 1 <= 1.2 * (n + 1) or size <= 8
+
+
+def test_padding_of_usual_sizes():
+    assert _padded(611) == (639, 7) and _padded(1000) == (1023, 7) and _padded(14) == (15, 1)
+
+
+def test_not_positive_definite_is_an_input_error():
+    d, oy, ox, _ = five_point(20, 20, seed=0)
+    d[5, 5] = -1.0
+    with pytest.raises(InputError, match="positive definite"):
+        GridCholesky(d, oy, ox)
