@@ -12,7 +12,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from bos.errors import InputError
-from bos.reconstruct._nested import GridCholesky, _padded
+from bos.reconstruct._nested import GridCholesky
 
 
 def five_point(ny, nx, seed, *, decoupled=None):
@@ -39,7 +39,8 @@ def five_point(ny, nx, seed, *, decoupled=None):
     return d, -cy, -cx, A
 
 
-@pytest.mark.parametrize("shape", [(1, 5), (2, 2), (3, 7), (14, 18), (17, 9), (40, 33), (100, 7), (64, 129)])
+@pytest.mark.parametrize("shape", [(1, 5), (2, 2), (3, 7), (1, 40), (14, 18), (17, 9), (40, 33), (100, 7), (64, 129),
+                                   (512, 3)])
 def test_solves_equal_scipy_sparse_lu(shape):
     d, oy, ox, A = five_point(*shape, seed=sum(shape))
     chol = GridCholesky(d, oy, ox)
@@ -50,8 +51,8 @@ def test_solves_equal_scipy_sparse_lu(shape):
     assert np.abs(chol.solve(b[:, 1]) - want[:, 1]).max() < 1e-10 * scale  # one right-hand side
 
 
-def test_decoupled_cells_and_padding():
-    ny, nx = 37, 52  # padded to 47 x 53: cells the solver adds must not leak into the solution
+def test_decoupled_cells():
+    ny, nx = 37, 52
     rng = np.random.default_rng(3)
     off = rng.random((ny, nx)) < 0.1
     off[:, 30] = True
@@ -61,20 +62,6 @@ def test_decoupled_cells_and_padding():
     want = spla.spsolve(A, b)
     assert np.abs(got - want).max() < 1e-10 * np.abs(want).max()
     assert np.allclose(got[off.ravel()], b[off.ravel()])  # unit rows
-
-
-def test_padded_sizes_are_small():
-    # (L + 1) 2^k - 1 with leaves L <= 8: the sizes (L + 1) 2^k step by at most 12/10, so the padding
-    # stays below 20 % per axis (611 -> 639, 1000 -> 1023)
-    for n in range(1, 3000, 7):
-        size, k = _padded(n)
-        leaf = (size + 1) // 2**k - 1
-        assert size >= n and 1 <= leaf <= 8 and (leaf + 1) * 2**k - 1 == size
-        assert size + 1 <= 1.2 * (n + 1) or size <= 8
-
-
-def test_padding_of_usual_sizes():
-    assert _padded(611) == (639, 7) and _padded(1000) == (1023, 7) and _padded(14) == (15, 1)
 
 
 def test_not_positive_definite_is_an_input_error():

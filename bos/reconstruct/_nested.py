@@ -1,14 +1,14 @@
 """Direct Cholesky solver for symmetric 5-point operators on a grid (nested dissection, dense fronts).
 
-The grid is padded to ``(L + 1) * 2**k - 1`` cells along each axis (padding
-cells are unit rows) and cut recursively by single grid lines into equal
-boxes (George's nested dissection), down to leaf boxes of at most 8 x 8
+The grid is cut recursively by single grid lines into boxes of (almost) equal
+size (George's nested dissection), down to leaf boxes of at most 8 x 8
 cells.  Every box eliminates its separator line (a leaf: all its cells)
 against the cells just outside it (its *front*), after adding the dense
-Schur complements of its two children (multifrontal elimination).  All boxes
-of one level have the same shape, so a level is one compiled call per *edge
-signature* (which box sides lie on the grid edge and so have no outside
-cells) and thread: about 15 levels of at most 9 groups.  The factors are
+Schur complements of its two children (multifrontal elimination).  The boxes of
+one level have at most four shapes (the cuts halve every band of rows or
+columns, rounding down and up), so a level is one compiled call per shape,
+*edge signature* (which box sides lie on the grid edge and so have no outside
+cells) and thread: about 15 levels of a few groups.  The factors are
 kept as ``L^-1`` and ``L^-1 F_SB`` per box, so the solves are matrix
 products (blocks of right-hand sides at once).
 
@@ -40,24 +40,9 @@ import numpy as np
 
 from ..errors import InputError
 
-MAX_LEAF = 8
-"""Largest leaf side (cells): the padded size along an axis is ``(L + 1) * 2**k - 1`` with ``L <= MAX_LEAF``."""
+MAX_LEAF = 5
+"""Boxes are cut until no side is longer than this (cells); leaves are 4-8 cells a side."""
 
-
-
-def _padded(n: int) -> tuple[int, int]:
-    """(padded size, number of halvings) for ``n`` cells: smallest ``(L + 1) 2**k - 1 >= n``, ``L <= 8``."""
-    best = None
-    for k in range(0, 40):
-        leaf = -(-(n + 1) // 2**k) - 1
-        if leaf < 1:
-            break
-        if leaf > MAX_LEAF:
-            continue
-        size = (leaf + 1) * 2**k - 1
-        if best is None or size < best[0]:
-            best = (size, k)
-    return best
 
 
 class _Group:
@@ -67,12 +52,18 @@ class _Group:
 
 
 def _front(h, w, split, sig):
+    """Cells a box of h x w eliminates (its separator line, or all cells of a leaf) and the cells
+    just outside it (sides not on the grid edge), as (row, col) relative to the box origin."""
     if split == "row":
         S = [((h - 1) // 2, c) for c in range(w)]
     elif split == "col":
         S = [(r, (w - 1) // 2) for r in range(h)]
     else:
         S = [(r, c) for r in range(h) for c in range(w)]
+    return S, _boundary(h, w, sig)
+
+
+def _boundary(h, w, sig):
     top, bottom, left, right = sig
     B = []
     if not top:
@@ -83,7 +74,7 @@ def _front(h, w, split, sig):
         B += [(r, -1) for r in range(h)]
     if not right:
         B += [(r, w) for r in range(h)]
-    return S, B
+    return B
 
 
 def _child_sig(sig, split, k):
@@ -120,18 +111,13 @@ class GridCholesky:
         diag = np.asarray(diag, dtype=float)
         ny, nx = diag.shape
         self.shape = (ny, nx)
-        NY, ky = _padded(ny)
-        NX, kx = _padded(nx)
-        self.padded = (NY, NX)
-        D = np.ones((NY, NX))
-        D[:ny, :nx] = diag
-        OY = np.zeros((NY, NX))  # OY[r, c]: coupling (r, c)-(r + 1, c); zero on the last row and in the padding
-        OY[:ny - 1, :nx] = off_y
-        OX = np.zeros((NY, NX))
-        OX[:ny, :nx - 1] = off_x
-        self.levels = self._tree(NY, NX, ky, kx)
+        OY = np.zeros((ny, nx))  # OY[r, c]: coupling (r, c)-(r + 1, c); zero on the last row
+        OY[:-1] = off_y
+        OX = np.zeros((ny, nx))
+        OX[:, :-1] = off_x
+        self.levels = self._tree(ny, nx)
         self._threads = min(2, os.cpu_count() or 1)
-        arrays = (D.ravel(), OY.ravel(), OX.ravel())
+        arrays = (np.ascontiguousarray(diag).ravel(), OY.ravel(), OX.ravel())
         with ThreadPoolExecutor(self._threads) as pool, _blas_threads() as blas:
             for lev in reversed(range(len(self.levels))):
                 # levels of many boxes: one box per kernel call per thread, BLAS on one thread (two
@@ -146,50 +132,65 @@ class GridCholesky:
 
     # ------------------------------------------------------------------ structure
 
-    def _tree(self, NY, NX, ky, kx):
+    def _tree(self, ny, nx):
+        """Levels of boxes, root first.  The grid is a product of row bands and column bands; a
+        split cuts every band of one direction by its line ``(size - 1) // 2``, so the band sizes
+        of a level differ by at most one and a level has at most 4 box shapes (x 9 edge signatures)."""
         levels = []
-        h, w, ey, ex, nby, nbx = NY, NX, ky, kx, 1, 1
+        rows, cols = [(0, ny)], [(0, nx)]  # bands: (first cell, size)
         while True:
-            split = _split(h, w, ey, ex)
+            hmax, wmax = max(b[1] for b in rows), max(b[1] for b in cols)
+            split = None if max(hmax, wmax) <= MAX_LEAF else ("row" if hmax >= wmax else "col")
+            nby, nbx = len(rows), len(cols)
+            r0, hs = np.array(rows).T
+            c0, ws = np.array(cols).T
             ti, tj = np.meshgrid(np.arange(nby), np.arange(nbx), indexing="ij")
             code = 8 * (ti == 0) + 4 * (ti == nby - 1) + 2 * (tj == 0) + (tj == nbx - 1)
+            keys = (hs[ti] * (nx + 1) + ws[tj]) * 16 + code
             groups = {}
             pos = np.empty((nby, nbx), dtype=np.int64)
-            for c in np.unique(code):
-                key = (bool(c & 8), bool(c & 4), bool(c & 2), bool(c & 1))
-                sel = code == c
+            for key in np.unique(keys):
+                c = int(key % 16)
+                h, w = divmod(int(key // 16), nx + 1)
+                sig = (bool(c & 8), bool(c & 4), bool(c & 2), bool(c & 1))
+                sel = keys == key
                 g = _Group()
-                g.sig = key
+                g.sig = (h, w, sig)
                 g.tiles = np.argwhere(sel)  # row-major order
                 pos[sel] = np.arange(len(g.tiles))
-                g.origins = g.tiles[:, 0] * (h + 1) * NX + g.tiles[:, 1] * (w + 1)
-                S, B = _front(h, w, split, key)
+                g.origins = r0[g.tiles[:, 0]] * nx + c0[g.tiles[:, 1]]
+                S, B = _front(h, w, split, sig)
                 g.nS = len(S)
-                g.S = np.array([r * NX + c for r, c in S], dtype=np.int64)
-                g.B = np.array([r * NX + c for r, c in B], dtype=np.int64).reshape(-1)
-                g.pattern = _pattern(S, B, NX)
+                g.S = np.array([r * nx + c for r, c in S], dtype=np.int64)
+                g.B = np.array([r * nx + c for r, c in B], dtype=np.int64).reshape(-1)
+                g.pattern = _pattern(S, B, nx)
                 g.Sidx = g.origins[:, None] + g.S[None, :]
                 g.Bidx = g.origins[:, None] + g.B[None, :]
                 g.maps = []
                 if split is not None:
                     slot = {rc: i for i, rc in enumerate(S + B)}
-                    hc, wc = ((h - 1) // 2, w) if split == "row" else (h, (w - 1) // 2)
-                    cey, cex = (ey - 1, ex) if split == "row" else (ey, ex - 1)
                     for k in (0, 1):
-                        dr, dc = ((hc + 1) * k, 0) if split == "row" else (0, (wc + 1) * k)
-                        csig = _child_sig(key, split, k)
-                        _, cB = _front(hc, wc, _split(hc, wc, cey, cex), csig)
+                        if split == "row":
+                            hc, wc, dr, dc = ((h - 1) // 2, w, 0, 0) if k == 0 else (h // 2, w, (h - 1) // 2 + 1, 0)
+                        else:
+                            hc, wc, dr, dc = (h, (w - 1) // 2, 0, 0) if k == 0 else (h, w // 2, 0, (w - 1) // 2 + 1)
+                        csig = _child_sig(sig, split, k)
+                        cB = _boundary(hc, wc, csig)
                         m = np.array([slot[(r + dr, c + dc)] for r, c in cB], dtype=np.int64)
                         ctile = (g.tiles * [2, 1] + [k, 0]) if split == "row" else (g.tiles * [1, 2] + [0, k])
-                        g.maps.append([csig, ctile, m])
-                groups[key] = g
-            levels.append(dict(h=h, w=w, split=split, groups=groups, pos=pos))
+                        g.maps.append([(hc, wc, csig), ctile, m])
+                groups[g.sig] = g
+            levels.append(dict(split=split, groups=groups, pos=pos))
             if split is None:
                 break
+            bands = rows if split == "row" else cols
+            halves = []
+            for a, size in bands:
+                halves += [(a, (size - 1) // 2), (a + (size - 1) // 2 + 1, size // 2)]
             if split == "row":
-                h, ey, nby = (h - 1) // 2, ey - 1, nby * 2
+                rows = halves
             else:
-                w, ex, nbx = (w - 1) // 2, ex - 1, nbx * 2
+                cols = halves
         for lev, level in enumerate(levels[:-1]):  # children's positions in their groups
             for g in level["groups"].values():
                 for item in g.maps:
@@ -223,10 +224,11 @@ class GridCholesky:
             jobs = [pool.submit(self._kern.factor_boxes, lo, hi, g.origins, pI, pJ, pK, pR, *arrays, nS, nB,
                                 *kids, g.Linv, g.W, g.U) for lo, hi in self._ranges(nbox)]
             try:
-                for job in jobs:
-                    job.result()
+                failed = sum(job.result() for job in jobs)
             except np.linalg.LinAlgError:
-                raise InputError("the integration system is not positive definite (direct solver)") from None
+                failed = 1
+            if failed:
+                raise InputError("the integration system is not positive definite (direct solver)")
         if child is not None:
             for cg in child["groups"].values():
                 cg.U = None
@@ -238,11 +240,8 @@ class GridCholesky:
         b = np.asarray(b, dtype=float)
         vec = b.ndim == 1
         ny, nx = self.shape
-        NY, NX = self.padded
         k = 1 if vec else b.shape[1]
-        r = np.zeros((NY, NX, k))
-        r[:ny, :nx] = b.reshape(ny, nx, k)
-        r = r.reshape(NY * NX, k)
+        r = np.array(b.reshape(ny * nx, k), dtype=float, order="C")  # a copy: the solution is written here
         kern = self._kern
         ys = {}
         up = {}
@@ -275,7 +274,6 @@ class GridCholesky:
                             for lo, hi in self._ranges(len(g.origins))]
                     for job in jobs:
                         job.result()
-        x = x.reshape(NY, NX, k)[:ny, :nx].reshape(ny * nx, k)
         return x[:, 0] if vec else x
 
 
@@ -306,20 +304,6 @@ class _blas_threads:
     def __exit__(self, *exc):
         self._set(None)
         return False
-
-
-def _split(h, w, ey, ex):
-    """How a box of h x w cells (``ey``, ``ex`` halvings left) is cut: by a row, a column, or not (leaf)."""
-    if ey == 0 and ex == 0:
-        return None
-    if ey > 0 and (h >= w or ex == 0):
-        return "row"
-    return "col"
-
-
-
-
-
 
 
 def _pattern(S, B, NX):

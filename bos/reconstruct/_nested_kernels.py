@@ -14,6 +14,39 @@ import numpy as np
 from numba import njit
 
 
+SMALL = 24
+"""Separators of at most this many cells use plain loops (no LAPACK/BLAS calls, no allocations):
+16 384 leaf boxes of 4 x 4 cells (611 x 611 grid) took 57 ms through numba's LAPACK wrappers."""
+
+
+@njit(cache=True, nogil=True)
+def _chol_inv_small(A, n, L, Li):  # pragma: no cover - compiled
+    """L = cholesky(A[:n, :n]) and Li = L^-1 by loops; False if A is not positive definite."""
+    for j in range(n):
+        s = A[j, j]
+        for k in range(j):
+            s -= L[j, k] * L[j, k]
+        if not s > 0.0:
+            return False
+        d = np.sqrt(s)
+        L[j, j] = d
+        for i in range(j + 1, n):
+            t = A[i, j]
+            for k in range(j):
+                t -= L[i, k] * L[j, k]
+            L[i, j] = t / d
+    for j in range(n):
+        for i in range(j):
+            Li[i, j] = 0.0
+        Li[j, j] = 1.0 / L[j, j]
+        for i in range(j + 1, n):
+            t = 0.0
+            for k in range(j, i):
+                t -= L[i, k] * Li[k, j]
+            Li[i, j] = t / L[i, i]
+    return True
+
+
 @njit(cache=True, nogil=True)
 def factor_boxes(lo, hi, origins, pI, pJ, pK, pR, D, OY, OX, nS, nB,
                  U0, pos0, map0, U1, pos1, map1, Linv, W, U):  # pragma: no cover - compiled
@@ -26,6 +59,8 @@ def factor_boxes(lo, hi, origins, pI, pJ, pK, pR, D, OY, OX, nS, nB,
     """
     nf = nS + nB
     F = np.empty((nf, nf))
+    Ls = np.zeros((nS, nS))
+    Wt = np.empty((nB, nS))
     for b in range(lo, hi):
         F[:, :] = 0.0
         o = origins[b]
@@ -44,6 +79,27 @@ def factor_boxes(lo, hi, origins, pI, pJ, pK, pR, D, OY, OX, nS, nB,
                 mi = map1[i]
                 for j in range(map1.shape[0]):
                     F[mi, map1[j]] += u[i, j]
+        if nS <= SMALL:
+            Li = Linv[b]
+            if not _chol_inv_small(F, nS, Ls, Li):
+                return 1
+            for i in range(nB):  # Wt = (L^-1 F_SB)^T, rows contiguous
+                for r in range(nS):
+                    t = 0.0
+                    for c in range(r + 1):
+                        t += Li[r, c] * F[c, nS + i]
+                    Wt[i, r] = t
+            for r in range(nS):
+                for i in range(nB):
+                    W[b, r, i] = Wt[i, r]
+            for i in range(nB):
+                for j in range(i, nB):
+                    t = F[nS + i, nS + j]
+                    for r in range(nS):
+                        t -= Wt[i, r] * Wt[j, r]
+                    U[b, i, j] = t
+                    U[b, j, i] = t
+            continue
         L = np.linalg.cholesky(np.ascontiguousarray(F[:nS, :nS]))
         Li = np.linalg.inv(L)
         Linv[b] = Li
@@ -71,6 +127,20 @@ def forward_boxes(lo, hi, Sidx, r, nB, up0, pos0, map0, up1, pos1, map1, Linv, W
             u = up1[pos1[b]]
             for i in range(map1.shape[0]):
                 front[map1[i]] += u[i]
+        if nS <= SMALL:
+            for i in range(nS):
+                for j in range(k):
+                    t = 0.0
+                    for c in range(i + 1):
+                        t += Linv[b, i, c] * front[c, j]
+                    y[b, i, j] = t
+            for i in range(nB):
+                for j in range(k):
+                    t = front[nS + i, j]
+                    for c in range(nS):
+                        t -= W[b, c, i] * y[b, c, j]
+                    up[b, i, j] = t
+            continue
         yb = Linv[b] @ np.ascontiguousarray(front[:nS])
         y[b] = yb
         if nB:
@@ -85,7 +155,25 @@ def backward_boxes(lo, hi, Sidx, Bidx, x, Linv, W, y):  # pragma: no cover - com
     nB = Bidx.shape[1]
     k = x.shape[1]
     xb = np.empty((nB, k))
+    z = np.empty((nS, k))
     for b in range(lo, hi):
+        if nS <= SMALL:
+            for i in range(nB):
+                xb[i] = x[Bidx[b, i]]
+            for i in range(nS):
+                for j in range(k):
+                    t = y[b, i, j]
+                    for c in range(nB):
+                        t -= W[b, i, c] * xb[c, j]
+                    z[i, j] = t
+            for i in range(nS):
+                row = Sidx[b, i]
+                for j in range(k):
+                    t = 0.0
+                    for c in range(i, nS):
+                        t += Linv[b, c, i] * z[c, j]
+                    x[row, j] = t
+            continue
         yb = y[b].copy()
         if nB:
             for i in range(nB):

@@ -845,34 +845,74 @@ def _leveler(pb: _Problem, reference_region, reference_value):
             return phi
 
         return level_rectangle
+    labels, sel, counts, free, inside, target = _parts(pb, region, reference_value)
+    sel = sel.ravel()
+
+    def level(phi):
+        vals = np.where(pb.valid, phi, 0.0).ravel()
+        sums = np.bincount(sel, weights=vals, minlength=len(counts))
+        shift = np.zeros(len(counts))
+        shift[free] = target - sums[free] / counts[free]
+        return np.where(inside, phi + shift[labels], np.nan)
+
+    return level
+
+
+def _parts(pb: _Problem, region, reference_value):
+    """Connected parts of the domain and how their levels are fixed.
+
+    Returns the part labels (grid, 0 outside), the part each cell's value is averaged into
+    (0: not averaged), the count of averaged cells per part, which parts are shifted to the
+    target, which cells keep a value, and the target."""
     labels, count = ndimage.label(pb.valid)
     anchored = np.zeros(count + 1, bool)
     for edge in pb.dirichlet:
         anchored[np.unique(labels[_edge_slice(edge)])] = True
     anchored[0] = False
     if region is None:
-        sel = labels.ravel()
+        sel = labels
         target = 0.0
     else:
         ref = region & pb.valid
         if not ref.any():
             raise InputError("reference region contains no valid vectors")
-        sel = np.where(ref, labels, 0).ravel()
+        sel = np.where(ref, labels, 0)
         target = reference_value
-    counts = np.bincount(sel, minlength=count + 1)
+    counts = np.bincount(sel.ravel(), minlength=count + 1)
     free = (counts > 0) & ~anchored
     free[0] = False
     keep = anchored | free
     if region is None:
         keep[1:] = True
     inside = pb.valid & keep[labels]
+    return labels, sel, counts, free, inside, target
 
-    def level(phi):
-        vals = np.where(pb.valid, phi, 0.0).ravel()
-        sums = np.bincount(sel, weights=vals, minlength=count + 1)
-        shift = np.zeros(count + 1)
-        shift[free] = target - sums[free] / counts[free]
-        return np.where(inside, phi + shift[labels], np.nan)
+
+def _block_leveler(pb: _Problem, reference_region):
+    """:func:`_leveler` with reference value 0 for blocks of solutions in the compressed numbering
+    (valid cells in row-major order, one column per sample), in place; NaN where the level is unknown."""
+    region = _region(reference_region, pb.shape)
+    if pb.rectangle and not pb.dirichlet:
+        ridx = np.flatnonzero(region.ravel()) if region is not None else None
+
+        def level_rectangle(X):
+            X -= (X[ridx] if ridx is not None else X).mean(axis=0)
+            return X
+
+        return level_rectangle
+    labels, sel, counts, free, inside, _ = _parts(pb, region, 0.0)
+    valid = pb.valid
+    lab, inside = labels[valid], inside[valid]
+    n = lab.size
+    average = sp.csr_matrix((np.ones(n), (sel[valid], np.arange(n))), shape=(len(counts), n))
+
+    def level(X):
+        sums = average @ X
+        shift = np.zeros(sums.shape)
+        shift[free] = -sums[free] / counts[free, None]
+        X += shift[lab]
+        X[~inside] = np.nan
+        return X
 
     return level
 
@@ -1034,6 +1074,9 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     acc = np.zeros(shape)
     block = getattr(solve, "block", None)  # direct solver: blocks of right-hand sides, exact
     chunk = 16 if block is not None else 1
+    if block is not None:  # blocks: level and square in the compressed numbering (no grids per sample)
+        level_block = _block_leveler(noise, reference_region)
+        acc_c = np.zeros(int(pb.valid.sum()))
 
     def right_hand_sides(count):
         rhs = []
@@ -1051,8 +1094,11 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
         if progress is not None:
             progress(done / n_samples)
 
-    def scattered(x):
-        return [_scatter(pb, x[:, j], solve.index) for j in range(x.shape[1])]
+    def add_block(x, done):
+        x = level_block(x)
+        np.add(acc_c, np.einsum("ij,ij->i", x, x), out=acc_c)
+        if progress is not None:
+            progress(done / n_samples)
 
     lead_x = []
 
@@ -1083,10 +1129,10 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
                     pending.append((min(k0 + chunk, n_samples), ex.submit(block, b)))
                     while len(pending) > threads:
                         done, fut = pending.popleft()
-                        add(scattered(take_lead(fut.result())), done)
+                        add_block(take_lead(fut.result()), done)
                 while pending:
                     done, fut = pending.popleft()
-                    add(scattered(take_lead(fut.result())), done)
+                    add_block(take_lead(fut.result()), done)
         else:
             for k0 in range(0, n_samples, chunk):
                 rhs = right_hand_sides(min(chunk, n_samples - k0))
@@ -1094,10 +1140,12 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
                     b = np.stack([r[pb.valid] for r in rhs], axis=1)
                     if k0 == 0 and lead is not None:
                         b = np.column_stack([lead, b])
-                    phis = scattered(take_lead(block(b)))
+                    add_block(take_lead(block(b)), min(k0 + chunk, n_samples))
                 else:
-                    phis = [solve(r, rtol) for r in rhs]
-                add(phis, min(k0 + chunk, n_samples))
+                    add([solve(r, rtol) for r in rhs], min(k0 + chunk, n_samples))
+    if block is not None:
+        acc = np.full(shape, np.nan)
+        acc[pb.valid] = acc_c
     # the samples' mean is known to be zero (linear map of zero-mean noise): divide by n, not n - 1
     sigma = np.sqrt(acc / n_samples)
     if lead is not None:
