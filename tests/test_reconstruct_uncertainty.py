@@ -304,10 +304,16 @@ def test_pipelined_block_solves_give_the_same_sigma_bit_for_bit(monkeypatch):
     gy, gx = rng.standard_normal((60, 70)), rng.standard_normal((60, 70))
     sig = np.exp(0.8 * rng.standard_normal((60, 70)))
     kw = dict(sigma_y=sig, sigma_x=sig, spacing_m=1.0, weights=1 / sig**2, n_samples=20)
+    monkeypatch.setattr(poisson, "MC_ONE_BLOCK_MAX_UNKNOWNS", 0)  # blocks of 16: 2, the first with the main solve
     monkeypatch.setattr(os, "cpu_count", lambda: 2)
     phi2, s2, solver = poisson.integrate_gradient_with_uncertainty(gy, gx, **kw)
     monkeypatch.setattr(os, "cpu_count", lambda: 1)
     phi1, s1, _ = poisson.integrate_gradient_with_uncertainty(gy, gx, **kw)
     assert solver == "direct"
     assert np.array_equal(s1, s2, equal_nan=True) and np.array_equal(phi1, phi2, equal_nan=True)
+    # and one block (small problems) gives the same numbers up to rounding
+    monkeypatch.setattr(poisson, "MC_ONE_BLOCK_MAX_UNKNOWNS", 10**9)
+    phi3, s3, _ = poisson.integrate_gradient_with_uncertainty(gy, gx, **kw)
+    assert np.allclose(s3, s2, rtol=1e-10, equal_nan=True)
+    assert np.allclose(phi3, phi2, rtol=0, atol=1e-10 * np.nanmax(np.abs(phi2)), equal_nan=True)
     assert np.nanmin(s2) > 0

@@ -33,6 +33,7 @@ Liu (1992), SIAM Rev. 34:82 (the multifrontal method for sparse factorisation) [
 
 from __future__ import annotations
 
+import functools
 import os
 from concurrent.futures import ThreadPoolExecutor
 
@@ -48,7 +49,7 @@ MAX_LEAF = 5
 class _Group:
     """Boxes of one level sharing an edge signature, with their factors."""
 
-    __slots__ = ("sig", "tiles", "origins", "S", "B", "nS", "pattern", "maps", "Linv", "W", "U", "Sidx", "Bidx")
+    __slots__ = ("sig", "tiles", "origins", "S", "B", "nS", "pattern", "maps", "Sidx", "Bidx")
 
 
 def _front(h, w, split, sig):
@@ -115,9 +116,11 @@ class GridCholesky:
         OY[:-1] = off_y
         OX = np.zeros((ny, nx))
         OX[:, :-1] = off_x
-        self.levels = self._tree(ny, nx)
+        self.levels = _structure(ny, nx)
         self._threads = min(2, os.cpu_count() or 1)
+        self._factors = {}  # (level, group key) -> (L^-1, L^-1 F_SB) per box
         arrays = (np.ascontiguousarray(diag).ravel(), OY.ravel(), OX.ravel())
+        schur = {}  # the Schur complements a level passes to its parent
         with ThreadPoolExecutor(self._threads) as pool, _blas_threads() as blas:
             for lev in reversed(range(len(self.levels))):
                 # levels of many boxes: one box per kernel call per thread, BLAS on one thread (two
@@ -125,78 +128,7 @@ class GridCholesky:
                 # levels (1-3 large boxes): BLAS on all cores
                 few = max(len(g.origins) for g in self.levels[lev]["groups"].values()) < 4
                 blas(None if few else 1)
-                self._factor_level(lev, arrays, pool)
-        for level in self.levels:  # the Schur complements are consumed
-            for g in level["groups"].values():
-                g.U = None
-
-    # ------------------------------------------------------------------ structure
-
-    def _tree(self, ny, nx):
-        """Levels of boxes, root first.  The grid is a product of row bands and column bands; a
-        split cuts every band of one direction by its line ``(size - 1) // 2``, so the band sizes
-        of a level differ by at most one and a level has at most 4 box shapes (x 9 edge signatures)."""
-        levels = []
-        rows, cols = [(0, ny)], [(0, nx)]  # bands: (first cell, size)
-        while True:
-            hmax, wmax = max(b[1] for b in rows), max(b[1] for b in cols)
-            split = None if max(hmax, wmax) <= MAX_LEAF else ("row" if hmax >= wmax else "col")
-            nby, nbx = len(rows), len(cols)
-            r0, hs = np.array(rows).T
-            c0, ws = np.array(cols).T
-            ti, tj = np.meshgrid(np.arange(nby), np.arange(nbx), indexing="ij")
-            code = 8 * (ti == 0) + 4 * (ti == nby - 1) + 2 * (tj == 0) + (tj == nbx - 1)
-            keys = (hs[ti] * (nx + 1) + ws[tj]) * 16 + code
-            groups = {}
-            pos = np.empty((nby, nbx), dtype=np.int64)
-            for key in np.unique(keys):
-                c = int(key % 16)
-                h, w = divmod(int(key // 16), nx + 1)
-                sig = (bool(c & 8), bool(c & 4), bool(c & 2), bool(c & 1))
-                sel = keys == key
-                g = _Group()
-                g.sig = (h, w, sig)
-                g.tiles = np.argwhere(sel)  # row-major order
-                pos[sel] = np.arange(len(g.tiles))
-                g.origins = r0[g.tiles[:, 0]] * nx + c0[g.tiles[:, 1]]
-                S, B = _front(h, w, split, sig)
-                g.nS = len(S)
-                g.S = np.array([r * nx + c for r, c in S], dtype=np.int64)
-                g.B = np.array([r * nx + c for r, c in B], dtype=np.int64).reshape(-1)
-                g.pattern = _pattern(S, B, nx)
-                g.Sidx = g.origins[:, None] + g.S[None, :]
-                g.Bidx = g.origins[:, None] + g.B[None, :]
-                g.maps = []
-                if split is not None:
-                    slot = {rc: i for i, rc in enumerate(S + B)}
-                    for k in (0, 1):
-                        if split == "row":
-                            hc, wc, dr, dc = ((h - 1) // 2, w, 0, 0) if k == 0 else (h // 2, w, (h - 1) // 2 + 1, 0)
-                        else:
-                            hc, wc, dr, dc = (h, (w - 1) // 2, 0, 0) if k == 0 else (h, w // 2, 0, (w - 1) // 2 + 1)
-                        csig = _child_sig(sig, split, k)
-                        cB = _boundary(hc, wc, csig)
-                        m = np.array([slot[(r + dr, c + dc)] for r, c in cB], dtype=np.int64)
-                        ctile = (g.tiles * [2, 1] + [k, 0]) if split == "row" else (g.tiles * [1, 2] + [0, k])
-                        g.maps.append([(hc, wc, csig), ctile, m])
-                groups[g.sig] = g
-            levels.append(dict(split=split, groups=groups, pos=pos))
-            if split is None:
-                break
-            bands = rows if split == "row" else cols
-            halves = []
-            for a, size in bands:
-                halves += [(a, (size - 1) // 2), (a + (size - 1) // 2 + 1, size // 2)]
-            if split == "row":
-                rows = halves
-            else:
-                cols = halves
-        for lev, level in enumerate(levels[:-1]):  # children's positions in their groups
-            for g in level["groups"].values():
-                for item in g.maps:
-                    ctile = item[1]
-                    item[1] = np.ascontiguousarray(levels[lev + 1]["pos"][ctile[:, 0], ctile[:, 1]])
-        return levels
+                schur = self._factor_level(lev, arrays, pool, schur)
 
     def _ranges(self, nbox):
         """Box ranges for the threads: two halves when there are enough boxes (the kernels release
@@ -207,31 +139,30 @@ class GridCholesky:
 
     # ------------------------------------------------------------------ factorisation
 
-    def _factor_level(self, lev, arrays, pool):
-        level = self.levels[lev]
-        child = self.levels[lev + 1] if lev + 1 < len(self.levels) else None
-        for g in level["groups"].values():
+    def _factor_level(self, lev, arrays, pool, child_schur):
+        """Factor the boxes of level ``lev``; returns their Schur complements (for the parents)."""
+        schur = {}
+        for key, g in self.levels[lev]["groups"].items():
             nbox, nS, nB = len(g.origins), g.nS, len(g.B)
-            g.Linv = np.empty((nbox, nS, nS))
-            g.W = np.empty((nbox, nS, nB))
-            g.U = np.empty((nbox, nB, nB))
+            Linv = np.empty((nbox, nS, nS))
+            W = np.empty((nbox, nS, nB))
+            U = schur[key] = np.empty((nbox, nB, nB))
             kids = []
             for csig, pos, m in g.maps:
-                kids += [child["groups"][csig].U, pos, m]
+                kids += [child_schur[csig], pos, m]
             if not kids:
                 kids = [*_NO_CHILD, *_NO_CHILD]
             pI, pJ, pK, pR = g.pattern
             jobs = [pool.submit(self._kern.factor_boxes, lo, hi, g.origins, pI, pJ, pK, pR, *arrays, nS, nB,
-                                *kids, g.Linv, g.W, g.U) for lo, hi in self._ranges(nbox)]
+                                *kids, Linv, W, U) for lo, hi in self._ranges(nbox)]
             try:
                 failed = sum(job.result() for job in jobs)
             except np.linalg.LinAlgError:
                 failed = 1
             if failed:
                 raise InputError("the integration system is not positive definite (direct solver)")
-        if child is not None:
-            for cg in child["groups"].values():
-                cg.U = None
+            self._factors[lev, key] = (Linv, W)
+        return schur
 
     # ------------------------------------------------------------------ solves
 
@@ -252,6 +183,7 @@ class GridCholesky:
                 new_up = {}
                 for key, g in level["groups"].items():
                     nbox, nS, nB = len(g.origins), g.nS, len(g.B)
+                    Linv, W = self._factors[lev, key]
                     kids = []
                     for csig, pos, m in g.maps:
                         kids += [up[csig], pos, m]
@@ -259,7 +191,7 @@ class GridCholesky:
                         kids = [*_NO_CHILD_VEC, *_NO_CHILD_VEC]
                     y = np.empty((nbox, nS, k))
                     u = np.empty((nbox, nB, k))
-                    jobs = [pool.submit(kern.forward_boxes, lo, hi, g.Sidx, r, nB, *kids, g.Linv, g.W, y, u)
+                    jobs = [pool.submit(kern.forward_boxes, lo, hi, g.Sidx, r, nB, *kids, Linv, W, y, u)
                             for lo, hi in self._ranges(nbox)]
                     for job in jobs:
                         job.result()
@@ -270,7 +202,8 @@ class GridCholesky:
             for lev, level in enumerate(self.levels):  # backward: root to leaves
                 for key, g in level["groups"].items():
                     y = ys.pop((lev, key))
-                    jobs = [pool.submit(kern.backward_boxes, lo, hi, g.Sidx, g.Bidx, x, g.Linv, g.W, y)
+                    Linv, W = self._factors[lev, key]
+                    jobs = [pool.submit(kern.backward_boxes, lo, hi, g.Sidx, g.Bidx, x, Linv, W, y)
                             for lo, hi in self._ranges(len(g.origins))]
                     for job in jobs:
                         job.result()
@@ -278,6 +211,75 @@ class GridCholesky:
 
 
 _NO_CHILD_VEC = (np.zeros((0, 0, 0)), np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
+
+
+@functools.lru_cache(maxsize=2)
+def _structure(ny, nx):
+    """Levels of boxes of an (ny, nx) grid, root first (structure only, cached: the frames of a
+    batch share it).  The grid is a product of row bands and column bands; a
+    split cuts every band of one direction by its line ``(size - 1) // 2``, so the band sizes
+    of a level differ by at most one and a level has at most 4 box shapes (x 9 edge signatures)."""
+    levels = []
+    rows, cols = [(0, ny)], [(0, nx)]  # bands: (first cell, size)
+    while True:
+        hmax, wmax = max(b[1] for b in rows), max(b[1] for b in cols)
+        split = None if max(hmax, wmax) <= MAX_LEAF else ("row" if hmax >= wmax else "col")
+        nby, nbx = len(rows), len(cols)
+        r0, hs = np.array(rows).T
+        c0, ws = np.array(cols).T
+        ti, tj = np.meshgrid(np.arange(nby), np.arange(nbx), indexing="ij")
+        code = 8 * (ti == 0) + 4 * (ti == nby - 1) + 2 * (tj == 0) + (tj == nbx - 1)
+        keys = (hs[ti] * (nx + 1) + ws[tj]) * 16 + code
+        groups = {}
+        pos = np.empty((nby, nbx), dtype=np.int64)
+        for key in np.unique(keys):
+            c = int(key % 16)
+            h, w = divmod(int(key // 16), nx + 1)
+            sig = (bool(c & 8), bool(c & 4), bool(c & 2), bool(c & 1))
+            sel = keys == key
+            g = _Group()
+            g.sig = (h, w, sig)
+            g.tiles = np.argwhere(sel)  # row-major order
+            pos[sel] = np.arange(len(g.tiles))
+            g.origins = r0[g.tiles[:, 0]] * nx + c0[g.tiles[:, 1]]
+            S, B = _front(h, w, split, sig)
+            g.nS = len(S)
+            g.S = np.array([r * nx + c for r, c in S], dtype=np.int64)
+            g.B = np.array([r * nx + c for r, c in B], dtype=np.int64).reshape(-1)
+            g.pattern = _pattern(S, B, nx)
+            g.Sidx = g.origins[:, None] + g.S[None, :]
+            g.Bidx = g.origins[:, None] + g.B[None, :]
+            g.maps = []
+            if split is not None:
+                slot = {rc: i for i, rc in enumerate(S + B)}
+                for k in (0, 1):
+                    if split == "row":
+                        hc, wc, dr, dc = ((h - 1) // 2, w, 0, 0) if k == 0 else (h // 2, w, (h - 1) // 2 + 1, 0)
+                    else:
+                        hc, wc, dr, dc = (h, (w - 1) // 2, 0, 0) if k == 0 else (h, w // 2, 0, (w - 1) // 2 + 1)
+                    csig = _child_sig(sig, split, k)
+                    cB = _boundary(hc, wc, csig)
+                    m = np.array([slot[(r + dr, c + dc)] for r, c in cB], dtype=np.int64)
+                    ctile = (g.tiles * [2, 1] + [k, 0]) if split == "row" else (g.tiles * [1, 2] + [0, k])
+                    g.maps.append([(hc, wc, csig), ctile, m])
+            groups[g.sig] = g
+        levels.append(dict(split=split, groups=groups, pos=pos))
+        if split is None:
+            break
+        bands = rows if split == "row" else cols
+        halves = []
+        for a, size in bands:
+            halves += [(a, (size - 1) // 2), (a + (size - 1) // 2 + 1, size // 2)]
+        if split == "row":
+            rows = halves
+        else:
+            cols = halves
+    for lev, level in enumerate(levels[:-1]):  # children's positions in their groups
+        for g in level["groups"].values():
+            for item in g.maps:
+                ctile = item[1]
+                item[1] = np.ascontiguousarray(levels[lev + 1]["pos"][ctile[:, 0], ctile[:, 1]])
+    return levels
 
 
 class _blas_threads:

@@ -15,8 +15,14 @@ from numba import njit
 
 
 SMALL = 24
-"""Separators of at most this many cells use plain loops (no LAPACK/BLAS calls, no allocations):
-16 384 leaf boxes of 4 x 4 cells (611 x 611 grid) took 57 ms through numba's LAPACK wrappers."""
+"""Factorisation: separators of at most this many cells use plain loops (no LAPACK/BLAS calls,
+no allocations): 16 384 leaf boxes of 4 x 4 cells (611 x 611 grid) took 57 ms through numba's
+LAPACK wrappers, 47 ms with loops."""
+
+SMALL_SOLVE = 40
+"""Solves: separators of at most this many cells use loops over contiguous right-hand sides
+(611 x 611, 16 right-hand sides: 0.22 s with BLAS calls per box above 24 cells, see
+docs/performance.md for the measured thresholds)."""
 
 
 @njit(cache=True, nogil=True)
@@ -127,19 +133,21 @@ def forward_boxes(lo, hi, Sidx, r, nB, up0, pos0, map0, up1, pos1, map1, Linv, W
             u = up1[pos1[b]]
             for i in range(map1.shape[0]):
                 front[map1[i]] += u[i]
-        if nS <= SMALL:
+        if nS <= SMALL_SOLVE:  # innermost loops over the right-hand sides (contiguous)
             for i in range(nS):
                 for j in range(k):
-                    t = 0.0
-                    for c in range(i + 1):
-                        t += Linv[b, i, c] * front[c, j]
-                    y[b, i, j] = t
+                    y[b, i, j] = 0.0
+                for c in range(i + 1):
+                    a = Linv[b, i, c]
+                    for j in range(k):
+                        y[b, i, j] += a * front[c, j]
             for i in range(nB):
                 for j in range(k):
-                    t = front[nS + i, j]
-                    for c in range(nS):
-                        t -= W[b, c, i] * y[b, c, j]
-                    up[b, i, j] = t
+                    up[b, i, j] = front[nS + i, j]
+                for c in range(nS):
+                    a = W[b, c, i]
+                    for j in range(k):
+                        up[b, i, j] -= a * y[b, c, j]
             continue
         yb = Linv[b] @ np.ascontiguousarray(front[:nS])
         y[b] = yb
@@ -157,22 +165,23 @@ def backward_boxes(lo, hi, Sidx, Bidx, x, Linv, W, y):  # pragma: no cover - com
     xb = np.empty((nB, k))
     z = np.empty((nS, k))
     for b in range(lo, hi):
-        if nS <= SMALL:
-            for i in range(nB):
-                xb[i] = x[Bidx[b, i]]
+        if nS <= SMALL_SOLVE:  # innermost loops over the right-hand sides (contiguous)
             for i in range(nS):
                 for j in range(k):
-                    t = y[b, i, j]
-                    for c in range(nB):
-                        t -= W[b, i, c] * xb[c, j]
-                    z[i, j] = t
+                    z[i, j] = y[b, i, j]
+                for c in range(nB):
+                    a = W[b, i, c]
+                    row = Bidx[b, c]
+                    for j in range(k):
+                        z[i, j] -= a * x[row, j]
             for i in range(nS):
                 row = Sidx[b, i]
                 for j in range(k):
-                    t = 0.0
-                    for c in range(i, nS):
-                        t += Linv[b, c, i] * z[c, j]
-                    x[row, j] = t
+                    x[row, j] = 0.0
+                for c in range(i, nS):
+                    a = Linv[b, c, i]
+                    for j in range(k):
+                        x[row, j] += a * z[c, j]
             continue
         yb = y[b].copy()
         if nB:
