@@ -179,7 +179,7 @@ def weighted(n, *, cg_first=False, rounds=REPEATS):
           f"noise): {med['old']:6.2f} s = "
           f"{med['old'] / med['auto']:.1f} auto solves (runs {', '.join(f'{t:.2f}' for t in times['old'])})")
     print(f"  sigma new vs old (independent noise draws): rms relative difference {dev:.3f} where sigma > 5 % "
-          f"of its maximum (two 32-sample estimates: expected about sqrt(2/32) = 0.25)")
+          f"of its maximum (two independent 32-sample estimates: expected about sqrt(2) / sqrt(64) = 0.18)")
 
 
 def main(quick=False):

@@ -130,10 +130,11 @@ def child(toml: str, t_spawn: float) -> None:
 
     exp = load_experiment(toml)
     preload = None
-    if exp.output.figures:  # as `bos run` does: matplotlib loads in the background while estimating
-        from cli.cmd_run import preload_when_estimating
+    from cli.cmd_run import preload_when_estimating, uses_direct_solver
 
-        preload = preload_when_estimating()
+    # as `bos run` does: matplotlib and the direct solver's kernels load in the background while estimating
+    if exp.output.figures or uses_direct_solver(exp):
+        preload = preload_when_estimating(figures=bool(exp.output.figures), direct_solver=uses_direct_solver(exp))
     stamps["ready"] = time.time()
 
     def progress(stage, fraction):

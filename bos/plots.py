@@ -1098,8 +1098,8 @@ def _settle_before_fork() -> None:
     import sys
     import threading
 
-    for t in threading.enumerate():
-        if t.name == PRELOAD_THREAD and t is not threading.current_thread():
+    for t in threading.enumerate():  # this module's preload and the direct solver's (bos-preload-*)
+        if t.name.startswith("bos-preload") and t is not threading.current_thread():
             t.join()
     import matplotlib.backends.backend_agg  # noqa: F401
     import matplotlib.colors  # noqa: F401

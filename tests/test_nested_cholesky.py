@@ -69,3 +69,15 @@ def test_not_positive_definite_is_an_input_error():
     d[5, 5] = -1.0
     with pytest.raises(InputError, match="positive definite"):
         GridCholesky(d, oy, ox)
+
+
+def test_warm_up_loads_the_only_signature_of_each_kernel():
+    # bos run loads the compiled kernels in the background on a 3 x 3 grid; a large problem must
+    # then run the same machine code (one type signature per kernel), not compile another
+    from bos.reconstruct import _nested, _nested_kernels as kern
+
+    _nested.warm_up()
+    d, oy, ox, _ = five_point(23, 41, seed=5)
+    GridCholesky(d, oy, ox).solve(np.ones((23 * 41, 3)))
+    for fn in (kern.factor_boxes, kern.forward_boxes, kern.backward_boxes):
+        assert len(fn.signatures) == 1, fn.signatures

@@ -816,6 +816,27 @@ def _compiler_available() -> bool:
     return True
 
 
+PRELOAD_THREAD = "bos-preload-direct-solver"
+
+
+def preload_direct_solver() -> None:
+    """Load the ``"direct"`` solver's compiled kernels in a background thread (numba import and
+    cached machine code, ~0.5 s on first use in a process; see :func:`._nested.warm_up`).  Threads
+    named ``bos-preload-*`` are waited for before the figures fork (``bos.plots``)."""
+    import threading
+
+    def work():
+        try:
+            if _compiler_available():
+                from ._nested import warm_up
+
+                warm_up()
+        except Exception:  # noqa: BLE001 - the reconstruction reports real problems itself
+            pass
+
+    threading.Thread(target=work, name=PRELOAD_THREAD, daemon=True).start()
+
+
 def auto_method(pb: _Problem) -> str:
     """Solver name that ``method="auto"`` picks for a problem (see :data:`PCG_MAX_WEIGHT_SPREAD`)."""
     if not pb.weighted:
