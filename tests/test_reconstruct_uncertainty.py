@@ -317,3 +317,17 @@ def test_pipelined_block_solves_give_the_same_sigma_bit_for_bit(monkeypatch):
     assert np.allclose(s3, s2, rtol=1e-10, equal_nan=True)
     assert np.allclose(phi3, phi2, rtol=0, atol=1e-10 * np.nanmax(np.abs(phi2)), equal_nan=True)
     assert np.nanmin(s2) > 0
+
+
+def test_without_the_compiled_kernels_auto_factorises_with_superlu(monkeypatch, reference):
+    # numba missing or unable to cache: the uncertainty falls back to SuperLU (same numbers up to rounding)
+    opts = dict(sigma_y=reference["sig_y"], sigma_x=reference["sig_x"], spacing_m=H, mask=reference["mask"],
+                weights=(1 / reference["sig_y"] ** 2, 1 / reference["sig_x"] ** 2),
+                reference_region=reference["region"], n_samples=8)
+    g = np.random.default_rng(9).standard_normal((2, NY, NX))
+    phi_d, sig_d, solver_d = integrate_gradient_with_uncertainty(g[0], g[1], **opts)
+    monkeypatch.setattr(poisson, "_COMPILER", False)
+    phi_s, sig_s, solver_s = integrate_gradient_with_uncertainty(g[0], g[1], **opts)
+    assert (solver_d, solver_s) == ("direct", "sparse")
+    assert np.allclose(phi_d, phi_s, atol=1e-10, equal_nan=True)
+    assert np.allclose(sig_d, sig_s, rtol=1e-8, equal_nan=True)

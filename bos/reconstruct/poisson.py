@@ -808,12 +808,20 @@ def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, met
 
 
 def _compiler_available() -> bool:
-    """numba (which compiles the kernels of the ``"direct"`` solver) can be imported."""
-    try:
-        import numba  # noqa: F401
-    except Exception:  # pragma: no cover - numba is a dependency; a broken install falls back to SuperLU
-        return False
-    return True
+    """The ``"direct"`` solver's compiled kernels can be loaded (numba imports and can compile or
+    read its cache); else ``method="auto"`` factorises with SuperLU (``"sparse"``)."""
+    global _COMPILER
+    if _COMPILER is None:
+        try:
+            from . import _nested_kernels  # noqa: F401 - numba decorates (and locates its cache) here
+        except Exception:  # noqa: BLE001 - numba missing or broken, or no writable cache directory
+            _COMPILER = False
+        else:
+            _COMPILER = True
+    return _COMPILER
+
+
+_COMPILER: bool | None = None
 
 
 PRELOAD_THREAD = "bos-preload-direct-solver"
