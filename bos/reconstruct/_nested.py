@@ -1,7 +1,7 @@
 """Direct Cholesky solver for symmetric 5-point operators on a grid (nested dissection, dense fronts).
 
 The grid is cut recursively by single grid lines into boxes of (almost) equal
-size (George's nested dissection), down to leaf boxes of at most 8 x 8
+size (George's nested dissection), down to leaf boxes of at most 5 x 5
 cells.  Every box eliminates its separator line (a leaf: all its cells)
 against the cells just outside it (its *front*), after adding the dense
 Schur complements of its two children (multifrontal elimination).  The boxes of
@@ -18,7 +18,7 @@ BLAS; MUMPS' wheel needs numpy 1; PARDISO via MKL is a 230 MB download and
 was slower here), and scipy's SuperLU, with scalar kernels, took 1.2-2.1 s to
 factorise the weighted 611 x 611 benchmark (373 321 unknowns).  Measured on
 that benchmark (``benchmarks/bench_poisson.py``, warm): factorisation
-0.5-0.6 s, 16 right-hand sides ~0.2 s.  The same algorithm written with
+~0.5 s, 16 right-hand sides ~0.15 s.  The same algorithm written with
 batched numpy operations took 1.1-1.9 s to factorise (the many small boxes
 of the lower levels cost numpy's per-call and strided-copy overheads), hence
 the compiled kernels (:mod:`._nested_kernels`).
@@ -42,12 +42,13 @@ import numpy as np
 from ..errors import InputError
 
 MAX_LEAF = 5
-"""Boxes are cut until no side is longer than this (cells); leaves are 4-8 cells a side."""
-
+"""Boxes are cut until no side is longer than this (cells), so leaves have 2-5 cells a side.
+611 x 611 and 256 x 256, factorisation: 5 was as fast as or faster than 4, 6 and 8 (256^2: 0.10 s
+against 0.13-0.19 s with 8)."""
 
 
 class _Group:
-    """Boxes of one level sharing an edge signature, with their factors."""
+    """Boxes of one level sharing a shape and an edge signature (structure only)."""
 
     __slots__ = ("sig", "tiles", "origins", "S", "B", "nS", "pattern", "maps", "Sidx", "Bidx")
 

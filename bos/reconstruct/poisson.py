@@ -538,6 +538,8 @@ def prepare_direct(pb: _Problem):
     cells = np.flatnonzero(pb.valid.ravel())  # compressed numbering = row-major order of the valid cells
 
     def block(b):
+        if cells.size == ny * nx:  # full rectangle: compressed numbering = grid order
+            return chol.solve(b)
         full = np.zeros((ny * nx, b.shape[1]))
         full[cells] = b
         return chol.solve(full)[cells]
@@ -1109,9 +1111,25 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     acc = np.zeros(shape)
     block = getattr(solve, "block", None)  # direct solver: blocks of right-hand sides, exact
     chunk = (n_samples if pb.valid.sum() <= MC_ONE_BLOCK_MAX_UNKNOWNS else 16) if block is not None else 1
+    n_valid = int(pb.valid.sum())
+    rectangle = n_valid == pb.valid.size
     if block is not None:  # blocks: level and square in the compressed numbering (no grids per sample)
         level_block = _block_leveler(noise, reference_region)
-        acc_c = np.zeros(int(pb.valid.sum()))
+        acc_c = np.zeros(n_valid)
+
+    def rhs_block(count, first):
+        """Right-hand sides of ``count`` samples as columns (compressed numbering), after ``lead``
+        when ``first``: written column by column, no list of grids to stack."""
+        extra = 1 if first and lead is not None else 0
+        b = np.empty((count + extra, n_valid)).T  # columns contiguous while filling, (n, k) view
+        if extra:
+            b[:, 0] = lead
+        for j in range(extra, count + extra):
+            noise.gy = sy * _random_signs(rng, shape)
+            noise.gx = sx * _random_signs(rng, shape)
+            r = _grid_system(noise, rhs_only=True)
+            b[:, j] = r.ravel() if rectangle else r[pb.valid]
+        return b
 
     def right_hand_sides(count):
         rhs = []
@@ -1156,11 +1174,7 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
             with ThreadPoolExecutor(threads) as ex:
                 pending: deque = deque()
                 for k0 in range(0, n_samples, chunk):
-                    rhs = right_hand_sides(min(chunk, n_samples - k0))
-                    b = np.stack([r[pb.valid] for r in rhs], axis=1)
-                    if k0 == 0 and lead is not None:
-                        b = np.column_stack([lead, b])
-                    del rhs
+                    b = rhs_block(min(chunk, n_samples - k0), k0 == 0)
                     pending.append((min(k0 + chunk, n_samples), ex.submit(block, b)))
                     while len(pending) > threads:
                         done, fut = pending.popleft()
@@ -1170,14 +1184,12 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
                     add_block(take_lead(fut.result()), done)
         else:
             for k0 in range(0, n_samples, chunk):
-                rhs = right_hand_sides(min(chunk, n_samples - k0))
                 if block is not None:
-                    b = np.stack([r[pb.valid] for r in rhs], axis=1)
-                    if k0 == 0 and lead is not None:
-                        b = np.column_stack([lead, b])
-                    add_block(take_lead(block(b)), min(k0 + chunk, n_samples))
+                    add_block(take_lead(block(rhs_block(min(chunk, n_samples - k0), k0 == 0))),
+                              min(k0 + chunk, n_samples))
                 else:
-                    add([solve(r, rtol) for r in rhs], min(k0 + chunk, n_samples))
+                    add([solve(r, rtol) for r in right_hand_sides(min(chunk, n_samples - k0))],
+                        min(k0 + chunk, n_samples))
     if block is not None:
         acc = np.full(shape, np.nan)
         acc[pb.valid] = acc_c
