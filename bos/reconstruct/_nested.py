@@ -154,10 +154,9 @@ class GridCholesky:
             if not kids:
                 kids = [*_NO_CHILD, *_NO_CHILD]
             pI, pJ, pK, pR = g.pattern
-            jobs = [pool.submit(self._kern.factor_boxes, lo, hi, g.origins, pI, pJ, pK, pR, *arrays, nS, nB,
-                                *kids, Linv, W, U) for lo, hi in self._ranges(nbox)]
             try:
-                failed = sum(job.result() for job in jobs)
+                failed = sum(_run(pool, self._kern.factor_boxes, self._ranges(nbox), g.origins, pI, pJ, pK, pR,
+                                  *arrays, nS, nB, *kids, Linv, W, U))
             except np.linalg.LinAlgError:
                 failed = 1
             if failed:
@@ -192,10 +191,7 @@ class GridCholesky:
                         kids = [*_NO_CHILD_VEC, *_NO_CHILD_VEC]
                     y = np.empty((nbox, nS, k))
                     u = np.empty((nbox, nB, k))
-                    jobs = [pool.submit(kern.forward_boxes, lo, hi, g.Sidx, r, nB, *kids, Linv, W, y, u)
-                            for lo, hi in self._ranges(nbox)]
-                    for job in jobs:
-                        job.result()
+                    _run(pool, kern.forward_boxes, self._ranges(nbox), g.Sidx, r, nB, *kids, Linv, W, y, u)
                     ys[lev, key] = y
                     new_up[key] = u
                 up = new_up
@@ -204,11 +200,17 @@ class GridCholesky:
                 for key, g in level["groups"].items():
                     y = ys.pop((lev, key))
                     Linv, W = self._factors[lev, key]
-                    jobs = [pool.submit(kern.backward_boxes, lo, hi, g.Sidx, g.Bidx, x, Linv, W, y)
-                            for lo, hi in self._ranges(len(g.origins))]
-                    for job in jobs:
-                        job.result()
+                    _run(pool, kern.backward_boxes, self._ranges(len(g.origins)), g.Sidx, g.Bidx, x, Linv, W, y)
         return x[:, 0] if vec else x
+
+
+def _run(pool, kernel, ranges, *args):
+    """``kernel(lo, hi, *args)`` for each box range: the last in this thread, the others in the pool
+    (one hand-over per extra range; a single range never leaves this thread)."""
+    jobs = [pool.submit(kernel, lo, hi, *args) for lo, hi in ranges[:-1]]
+    lo, hi = ranges[-1]
+    out = [kernel(lo, hi, *args)]
+    return out + [job.result() for job in jobs]
 
 
 _NO_CHILD_VEC = (np.zeros((0, 0, 0)), np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
@@ -297,10 +299,14 @@ def warm_up() -> None:
 class _blas_threads:
     """Context manager yielding ``set(limit)``: BLAS thread limit (None = the library default)."""
 
-    def __enter__(self):
-        from threadpoolctl import ThreadpoolController
+    _controller = None  # inspecting the loaded libraries takes ~3 ms: once per process
 
-        self._ctl = ThreadpoolController()
+    def __enter__(self):
+        if _blas_threads._controller is None:
+            from threadpoolctl import ThreadpoolController
+
+            _blas_threads._controller = ThreadpoolController()
+        self._ctl = _blas_threads._controller
         self._limit = None
         self._ctx = None
         return self._set
