@@ -81,3 +81,17 @@ def test_warm_up_loads_the_only_signature_of_each_kernel():
     GridCholesky(d, oy, ox).solve(np.ones((23 * 41, 3)))
     for fn in (kern.factor_boxes, kern.forward_boxes, kern.backward_boxes):
         assert len(fn.signatures) == 1, fn.signatures
+
+
+def test_too_little_memory_is_an_input_error_before_factorising(monkeypatch):
+    from bos.reconstruct import _nested
+
+    d, oy, ox, _ = five_point(40, 50, seed=1)
+    need = _nested.factor_memory_bytes(40, 50)
+    # the estimate covers the factors (the L^-1 and L^-1 F_SB blocks actually kept)
+    chol = GridCholesky(d, oy, ox)
+    kept = sum(a.nbytes + b.nbytes for a, b in chol._factors.values())
+    assert kept < need < 4 * kept
+    monkeypatch.setattr(_nested, "_available_memory_bytes", lambda: need)
+    with pytest.raises(InputError, match="multigrid"):
+        GridCholesky(d, oy, ox)

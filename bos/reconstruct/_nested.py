@@ -118,6 +118,10 @@ class GridCholesky:
         OX = np.zeros((ny, nx))
         OX[:, :-1] = off_x
         self.levels = _structure(ny, nx)
+        need, have = factor_memory_bytes(ny, nx), _available_memory_bytes()
+        if have is not None and need > 0.8 * have:
+            raise InputError(f"the direct solver needs about {need / 1e9:.1f} GB for a {ny} x {nx} grid, more than "
+                             f"the {have / 1e9:.1f} GB available; use solver = \"multigrid\"")
         self._threads = min(2, os.cpu_count() or 1)
         self._factors = {}  # (level, group key) -> (L^-1, L^-1 F_SB) per box
         arrays = (np.ascontiguousarray(diag).ravel(), OY.ravel(), OX.ravel())
@@ -283,6 +287,29 @@ def _structure(ny, nx):
                 ctile = item[1]
                 item[1] = np.ascontiguousarray(levels[lev + 1]["pos"][ctile[:, 0], ctile[:, 1]])
     return levels
+
+
+def factor_memory_bytes(ny: int, nx: int) -> int:
+    """Memory [bytes] the factorisation of an (ny, nx) grid holds at its peak: the factors, two
+    levels of Schur complements and the structure's index arrays (611 x 611: 0.34 GB)."""
+    levels = _structure(ny, nx)
+    groups = [g for level in levels for g in level["groups"].values()]
+    factors = sum(len(g.origins) * g.nS * (g.nS + len(g.B)) for g in groups)
+    schur = max(sum(len(g.origins) * len(g.B) ** 2 for g in level["groups"].values()) for level in levels)
+    index = sum(g.Sidx.size + g.Bidx.size for g in groups)
+    return 8 * (factors + 2 * schur + index)
+
+
+def _available_memory_bytes():
+    """MemAvailable from /proc/meminfo (Linux), else None (no check)."""
+    try:
+        with open("/proc/meminfo") as f:
+            for line in f:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        return None
+    return None
 
 
 def warm_up() -> None:
