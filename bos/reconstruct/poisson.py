@@ -761,11 +761,12 @@ def integrate_gradient(
         has zero mean.
     reference_value : float
         Value of ``phi`` in the reference region.
-    method : {"auto", "dct", "pcg", "multigrid", "sparse"}
+    method : {"auto", "dct", "pcg", "multigrid", "direct", "sparse"}
         Solver from :data:`SOLVERS`; ``"auto"`` uses ``"dct"`` on full
         unweighted rectangles, ``"multigrid"`` when the weights span more than
         :data:`PCG_MAX_WEIGHT_SPREAD`, and ``"pcg"`` otherwise (it falls back
-        to ``"multigrid"`` if CG does not converge).
+        to ``"multigrid"`` if CG does not converge).  ``"direct"`` (the grid
+        Cholesky) and ``"sparse"`` (SuperLU) factorise.
 
     Returns
     -------
@@ -784,17 +785,14 @@ def integrate_gradient(
 
 MC_DIRECT_MAX_UNKNOWNS = 1_000_000
 """With uncertainty and ``method="auto"``: problems needing an iterative solver that have at most
-this many valid cells are factorised once (sparse LU in the grid's nested-dissection order,
-:func:`prepare_sparse`) and the main solve and all Monte Carlo samples reuse the factors (samples
-in blocks of 8 right-hand sides, exact).  Main solve + 32 samples, weighted benchmark
-(``benchmarks/bench_poisson.py --weighted-only``, same run, medians of 3): 512^2 2.2 s against
-3.8 s with multigrid samples, 611^2 (373 321 cells, a 24 MP run) 3.1 s against 5.5 s, 1000^2
-11.4 s against 14.9 s with a peak of +1.7 GB (+0.6 GB at 611^2); larger problems (not measured)
-use multigrid.  Before, with SuperLU's minimum-degree ordering, this limit was 150 000 cells
-(factorising 373 751 cells took 15 s on the loaded machine; 611^2 on the idle one: 2.5 s against
-1.4 s in nested-dissection order).  Tried and not adopted: CHOLMOD's supernodal Cholesky (wheel
-``cholespy`` 2.2.0, which bundles the reference BLAS): 3.7 s to factorise 611^2, main solve + 32
-samples 4.4 s against 5.3 s with multigrid samples in the same run."""
+this many valid cells are factorised once by the grid Cholesky (``"direct"``,
+:func:`prepare_direct`; SuperLU, ``"sparse"``, if the compiled kernels cannot load) and the main
+solve and all Monte Carlo samples reuse the factors (exact solves in blocks of right-hand sides).
+Main solve + 32 samples, weighted benchmark (``benchmarks/bench_poisson.py --weighted-only``,
+quiet machine, medians of 3, in units of one ``auto`` multigrid solve): 256^2 3.1-3.6, 512^2
+2.5-2.6, 611^2 (373 321 cells, a 24 MP run) 2.0-2.4 (0.93-1.02 s), 1000^2 2.1 (3.15 s, peak
++1.8 GB); SuperLU in nested-dissection order in the same runs: 5.9 / 5.4 / 4.9-5.2 / 5.5.  Larger
+problems (not measured) use multigrid samples."""
 
 
 def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, method, *, samples=False):
@@ -981,20 +979,22 @@ def integrate_gradient_uncertainty(
 ) -> np.ndarray:
     """1-sigma uncertainty of :func:`integrate_gradient` by Monte Carlo.
 
-    The gradient is perturbed with independent Gaussian noise of standard
-    deviations ``sigma_y``, ``sigma_x`` (same unit as the gradient) and
-    integrated ``n_samples`` times with the same options (weights, boundary,
-    reference region; Dirichlet values are exact); the root mean square of
-    the samples is returned.  The integration is linear and unbiased, so
-    this estimates the exact linear propagation
-    ``sigma_i^2 = sum_k L_ik^2 sigma_k^2``; its relative precision is
-    ``1/sqrt(2 n_samples)`` (12.5 % at 32) at every point.
+    The gradient is perturbed with independent random noise of standard
+    deviations ``sigma_y``, ``sigma_x`` (same unit as the gradient; random
+    signs +-sigma, see :func:`_random_signs`) and integrated ``n_samples``
+    times with the same options (weights, boundary, reference region;
+    Dirichlet values are exact); the root mean square of the samples is
+    returned.  The integration is linear and unbiased, so this estimates
+    the exact linear propagation ``sigma_i^2 = sum_k L_ik^2 sigma_k^2``;
+    its relative precision is at most ``1/sqrt(2 n_samples)`` (12.5 % at
+    32) at every point.
 
     Cost: the solver is set up once.  With ``method="auto"`` a problem of
     at most :data:`MC_DIRECT_MAX_UNKNOWNS` cells that needs an iterative
-    solver is factorised once (sparse LU in nested-dissection order) and
-    the samples are solved
-    exactly, 8 right-hand sides at a time; larger ones use multigrid (no
+    solver is factorised once (the grid Cholesky, ``"direct"``) and the
+    samples are solved exactly in blocks of right-hand sides (16, or all
+    of them up to :data:`MC_ONE_BLOCK_MAX_UNKNOWNS` cells, pipelined with
+    the building of the next block); larger ones use multigrid (no
     failing-CG detour, see :data:`PCG_MAX_WEIGHT_SPREAD`) and every sample
     is solved only to the relative residual ``rtol`` (default
     :data:`MC_RTOL`; 3-4 instead of 11-13 multigrid-CG iterations, the
