@@ -331,3 +331,24 @@ def test_without_the_compiled_kernels_auto_factorises_with_superlu(monkeypatch, 
     assert (solver_d, solver_s) == ("direct", "sparse")
     assert np.allclose(phi_d, phi_s, atol=1e-10, equal_nan=True)
     assert np.allclose(sig_d, sig_s, rtol=1e-8, equal_nan=True)
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+@pytest.mark.parametrize("masked", [False, True])
+@pytest.mark.parametrize("dirichlet", [{}, {"top": 0.0, "right": 0.0}, dict.fromkeys(poisson.EDGES, 0.0)])
+def test_stacked_noise_right_hand_sides_equal_the_per_field_ones(weighted, masked, dirichlet):
+    # the Monte Carlo builds the right-hand sides of 8 samples in one pass; the per-field assembly
+    # (checked against scipy's LU and analytic fields in test_reconstruct_poisson.py) is the reference
+    rng = np.random.default_rng(0)
+    ny, nx = 23, 31
+    mask = rng.random((ny, nx)) < 0.1 if masked else None
+    w = tuple(np.exp(rng.standard_normal((2, ny, nx)))) if weighted else None
+    g = rng.standard_normal((2, ny, nx))
+    pb = poisson._Problem(g[0], g[1], (0.3, 0.7), mask, None, w, "neumann", dirichlet)
+    pb.dirichlet = {e: np.zeros_like(v) for e, v in pb.dirichlet.items()}  # noise: the values are exact
+    stack = rng.standard_normal((3, 2, ny, nx)) * pb.valid
+    got = poisson._rhs_stack(pb, stack[:, 0], stack[:, 1])
+    for j in range(3):
+        pb.gy, pb.gx = stack[j]
+        want = poisson._grid_system(pb, rhs_only=True)
+        assert np.abs(got[j] - want).max() < 1e-12 * np.abs(want).max()

@@ -310,6 +310,32 @@ def _grid_system(pb: _Problem, *, rhs_only: bool = False):
     return diag, couplings[0], couplings[1], rhs
 
 
+def _rhs_stack(pb: _Problem, gy, gx):
+    """Right-hand sides for a stack of gradient fields ``(m, ny, nx)``: the same numbers as
+    ``_grid_system(..., rhs_only=True)`` field by field (test), with the problem's weights, flags and
+    Dirichlet edges (their values taken as zero: Monte Carlo noise).  One pass over the stack instead of
+    m calls: 256^2, 32 samples, 20 -> 9 ms."""
+    rhs = np.zeros(gy.shape)
+    for (wf, _), g, axis, h in zip(_faces(pb), (gy, gx), (1, 2), (pb.hy, pb.hx)):
+        lo = (slice(None), slice(None, -1)) if axis == 1 else (slice(None), slice(None), slice(None, -1))
+        hi = (slice(None), slice(1, None)) if axis == 1 else (slice(None), slice(None), slice(1, None))
+        q = g[lo] + g[hi]
+        q *= 0.5 * wf / h if np.ndim(wf) else 0.5 / h
+        rhs[lo] -= q
+        rhs[hi] += q
+    for edge in pb.dirichlet:
+        row = edge in ("top", "bottom")
+        g, h = (gy, pb.hy) if row else (gx, pb.hx)
+        k0, k1, sign = {"top": (0, 1, 1), "bottom": (-1, -2, -1), "left": (0, 1, 1), "right": (-1, -2, -1)}[edge]
+        sl = (slice(None), k0) if row else (slice(None), slice(None), k0)
+        second = (slice(None), k1) if row else (slice(None), slice(None), k1)
+        w = pb.weight(0 if row else 1)
+        w = pb.valid[_edge_slice(edge)].astype(float) if w is None else np.where(
+            pb.valid[_edge_slice(edge)], w[_edge_slice(edge)], 0.0)
+        rhs[sl] += w * sign * (5 * g[sl] - g[second]) / (4 * h)
+    return rhs
+
+
 def _rhs_unit(pb: _Problem, block_rows: int = 64):
     """Right-hand side on an unweighted full rectangle, in cache-sized row blocks.
 
@@ -1110,7 +1136,8 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     sx = np.where(pb.valid, np.nan_to_num(np.broadcast_to(np.asarray(sigma_x, dtype=float), shape)), 0.0)
     acc = np.zeros(shape)
     block = getattr(solve, "block", None)  # direct solver: blocks of right-hand sides, exact
-    chunk = (n_samples if pb.valid.sum() <= MC_ONE_BLOCK_MAX_UNKNOWNS else 16) if block is not None else 1
+    STACK = 8  # samples drawn together (bounded temporaries); block sizes are multiples of it
+    chunk = (n_samples if pb.valid.sum() <= MC_ONE_BLOCK_MAX_UNKNOWNS else 2 * STACK) if block is not None else STACK
     n_valid = int(pb.valid.sum())
     rectangle = n_valid == pb.valid.size
     if block is not None:  # blocks: level and square in the compressed numbering (no grids per sample)
@@ -1124,28 +1151,30 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
         b = np.empty((count + extra, n_valid)).T  # columns contiguous while filling, (n, k) view
         if extra:
             b[:, 0] = lead
-        for j in range(extra, count + extra):
-            noise.gy = sy * _random_signs(rng, shape)
-            noise.gx = sx * _random_signs(rng, shape)
-            r = _grid_system(noise, rhs_only=True)
-            b[:, j] = r.ravel() if rectangle else r[pb.valid]
+        for j0 in range(extra, count + extra, STACK):
+            m = min(STACK, count + extra - j0)
+            r = noise_rhs(m)
+            b[:, j0:j0 + m] = (r.reshape(m, -1) if rectangle else r[:, pb.valid]).T
         return b
 
+    def noise_rhs(m):
+        """Right-hand sides (m, ny, nx) of the next m samples' noise (drawn m at a time, so every
+        solver path sees the same noise for a seed: blocks hold whole stacks)."""
+        signs = _random_signs(rng, (m, 2) + shape)
+        signs[:, 0] *= sy
+        signs[:, 1] *= sx
+        return _rhs_stack(noise, signs[:, 0], signs[:, 1])
+
     def right_hand_sides(count):
-        rhs = []
-        for _ in range(count):
-            noise.gy = sy * _random_signs(rng, shape)
-            noise.gx = sx * _random_signs(rng, shape)
-            rhs.append(_grid_system(noise, rhs_only=True))
-        return rhs
+        return list(noise_rhs(count))
 
     def add(phis, done):
-        for phi in phis:
+        for i, phi in enumerate(phis, start=done - len(phis) + 1):
             phi = level(phi)
             phi *= phi
             np.add(acc, phi, out=acc)
-        if progress is not None:
-            progress(done / n_samples)
+            if progress is not None:
+                progress(i / n_samples)
 
     def add_block(x, done):
         x = level_block(x)
@@ -1188,6 +1217,7 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
                     add_block(take_lead(block(rhs_block(min(chunk, n_samples - k0), k0 == 0))),
                               min(k0 + chunk, n_samples))
                 else:
+                    # chunk = STACK: the samples' noise as for blocks; each solved and added in turn
                     add([solve(r, rtol) for r in right_hand_sides(min(chunk, n_samples - k0))],
                         min(k0 + chunk, n_samples))
     if block is not None:
