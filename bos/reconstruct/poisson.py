@@ -815,9 +815,9 @@ this many valid cells are factorised once by the grid Cholesky (``"direct"``,
 :func:`prepare_direct`; SuperLU, ``"sparse"``, if the compiled kernels cannot load) and the main
 solve and all Monte Carlo samples reuse the factors (exact solves in blocks of right-hand sides).
 Main solve + 32 samples, weighted benchmark (``benchmarks/bench_poisson.py --weighted-only``,
-quiet machine, medians of 3, in units of one ``auto`` multigrid solve): 256^2 3.1-3.6, 512^2
-2.5-2.6, 611^2 (373 321 cells, a 24 MP run) 2.0-2.4 (0.93-1.02 s), 1000^2 2.1 (3.15 s, peak
-+1.8 GB); SuperLU in nested-dissection order in the same runs: 5.9 / 5.4 / 4.9-5.2 / 5.5.  Larger
+quiet machine, medians of 3, in units of one ``auto`` multigrid solve): 256^2 3.0-3.6, 512^2
+2.5-2.9, 611^2 (373 321 cells, a 24 MP run) 2.0-2.4 (0.85-1.02 s), 1000^2 2.1 (3.15 s, peak
++1.8 GB); SuperLU in nested-dissection order in the same runs: 5.5-5.9 / 5.4-5.8 / 4.9-6.0 / 5.5.  Larger
 problems (not measured) use multigrid samples."""
 
 
