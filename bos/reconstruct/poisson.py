@@ -541,8 +541,9 @@ def prepare_direct(pb: _Problem):
 
     The normal equations (free constants pinned, as for ``"sparse"``) are
     factorised once by :class:`bos.reconstruct._nested.GridCholesky`: the grid
-    is cut by lines into equal boxes and each level of boxes is eliminated by
-    batched dense linear algebra; invalid cells are decoupled unit rows.
+    is cut by lines into boxes of (almost) equal size and each level of boxes
+    is eliminated by compiled per-box kernels (dense fronts); invalid cells
+    are decoupled unit rows.
     Factor and solve cost are set out in :data:`MC_DIRECT_MAX_UNKNOWNS`.  Like
     ``"sparse"`` the returned function also solves blocks of right-hand sides
     (``solve.block``, compressed numbering ``solve.index``).
@@ -817,8 +818,8 @@ solve and all Monte Carlo samples reuse the factors (exact solves in blocks of r
 Main solve + 32 samples, weighted benchmark (``benchmarks/bench_poisson.py --weighted-only``,
 quiet machine, medians of 3, in units of one ``auto`` multigrid solve): 256^2 3.0-3.6, 512^2
 2.5-2.9, 611^2 (373 321 cells, a 24 MP run) 2.0-2.4 (0.85-1.02 s), 1000^2 2.1 (3.15 s, peak
-+1.8 GB); SuperLU in nested-dissection order in the same runs: 5.5-5.9 / 5.4-5.8 / 4.9-6.0 / 5.5.  Larger
-problems (not measured) use multigrid samples."""
++1.8 GB); SuperLU in nested-dissection order in the same runs: 5.5-5.9 / 5.4-5.8 / 4.9-6.0 / 5.5.
+Larger problems (not measured) use multigrid samples."""
 
 
 def _prepare(gy, gx, spacing_m, mask, invalid, weights, boundary, dirichlet, method, *, samples=False):
