@@ -180,7 +180,7 @@ def default_workers() -> int:
 # Worker side
 # ---------------------------------------------------------------------------
 
-_THREADS: dict[str, Any] = {"n": None, "patched": False}
+_THREADS: dict[str, Any] = {"n": None}
 _CACHE: dict[str, tuple[Any, Any]] = {}
 
 
@@ -203,20 +203,9 @@ def apply_thread_budget(threads: int | None) -> None:
         threadpool_limits(limits=n)
     except ImportError:  # pragma: no cover - a runtime dependency
         pass
-    from .displacement import _deform
+    from . import _threads
 
-    original = getattr(_deform, "resolve_workers", None)
-    if not _THREADS["patched"] and original is not None:
-        # the estimators take "all cores" when no thread count is given; in a
-        # worker that shares the machine with others that is the budget instead
-
-        def budget_workers(workers: int | None = None) -> int:
-            if (workers is None or workers <= 0) and _THREADS["n"]:
-                return int(_THREADS["n"])
-            return original(workers)
-
-        _deform.resolve_workers = budget_workers
-        _THREADS["patched"] = True
+    _threads.set_budget(n)  # the estimators' and the direct solver's "all cores"
     _THREADS["n"] = n
 
 

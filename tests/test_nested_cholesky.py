@@ -6,6 +6,8 @@ Reference: scipy's sparse LU (``scipy.sparse.linalg.spsolve``, SuperLU) on the s
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -95,3 +97,25 @@ def test_too_little_memory_is_an_input_error_before_factorising(monkeypatch):
     monkeypatch.setattr(_nested, "_available_memory_bytes", lambda: need)
     with pytest.raises(InputError, match="multigrid"):
         GridCholesky(d, oy, ox)
+
+
+def test_a_batch_workers_thread_budget_is_respected(monkeypatch):
+    # bos batch gives each local worker cores // workers threads; the solver must not take more
+    import threadpoolctl
+
+    from bos import _threads, batch
+
+    monkeypatch.setitem(_threads._BUDGET, "n", None)
+    d, oy, ox, A = five_point(30, 40, seed=4)
+    assert GridCholesky(d, oy, ox)._threads == min(2, os.cpu_count() or 1)
+    # the worker's budget as bos batch sets it (BLAS limits and environment left to this test's scope)
+    monkeypatch.setattr(threadpoolctl, "threadpool_limits", lambda limits=None: None)
+    for var in batch._THREAD_VARS:
+        monkeypatch.setenv(var, "")
+    monkeypatch.setattr(batch, "_THREADS", {"n": None})
+    batch.apply_thread_budget(1)
+    chol = GridCholesky(d, oy, ox)
+    assert chol._threads == 1
+    b = np.random.default_rng(0).standard_normal((A.shape[0], 2))
+    want = spla.spsolve(A, b)
+    assert np.abs(chol.solve(b) - want).max() < 1e-10 * np.abs(want).max()

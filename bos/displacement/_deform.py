@@ -6,19 +6,18 @@ private solvers with :func:`functools.partial`).
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from scipy import ndimage as ndi
 from scipy import sparse
 
+from .. import _threads
+
 
 def resolve_workers(workers: int | None) -> int:
-    """Number of threads to use (None or <= 0: all cores)."""
-    if workers is None or workers <= 0:
-        return max(1, os.cpu_count() or 1)
-    return int(workers)
+    """Number of threads to use (None or <= 0: all cores, or the batch worker's budget)."""
+    return _threads.resolve_workers(workers)
 
 
 def spline_coefficients(image: np.ndarray, order: int, *, workers: int = 1) -> np.ndarray:

@@ -34,11 +34,11 @@ Liu (1992), SIAM Rev. 34:82 (the multifrontal method for sparse factorisation) [
 from __future__ import annotations
 
 import functools
-import os
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
+from .._threads import resolve_workers
 from ..errors import InputError
 
 MAX_LEAF = 5
@@ -122,7 +122,7 @@ class GridCholesky:
         if have is not None and need > 0.8 * have:
             raise InputError(f"the direct solver needs about {need / 1e9:.1f} GB for a {ny} x {nx} grid, more than "
                              f"the {have / 1e9:.1f} GB available; use solver = \"multigrid\"")
-        self._threads = min(2, os.cpu_count() or 1)
+        self._threads = min(2, resolve_workers())  # the batch worker's budget, else all cores (2 used)
         self._factors = {}  # (level, group key) -> (L^-1, L^-1 F_SB) per box
         arrays = (np.ascontiguousarray(diag).ravel(), OY.ravel(), OX.ravel())
         schur = {}  # the Schur complements a level passes to its parent

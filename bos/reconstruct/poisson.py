@@ -45,7 +45,6 @@ Braess (1995), Computing 55:379 (aggregation multigrid with over-correction) [M]
 from __future__ import annotations
 
 import copy
-import os
 from typing import Callable
 
 import numpy as np
@@ -55,6 +54,7 @@ import scipy.sparse.linalg as spla
 from scipy.sparse import csgraph
 from scipy import ndimage
 
+from .._threads import resolve_workers
 from ..errors import InputError
 
 EDGES = ("top", "bottom", "left", "right")
@@ -1196,7 +1196,7 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     # solve in flight; results added in sample order, so bit-identical to one thread).  611 x 611
     # weighted problem, whole call: 0.88 s, against 0.90-1.05 s with two solves in flight (each
     # with its own two threads).
-    threads = min(2, os.cpu_count() or 1) if block is not None else 1
+    threads = min(2, resolve_workers()) if block is not None else 1  # budget of a batch worker, else cores
     with threadpool_limits(limits=1, user_api="blas"):
         if threads > 1:
             from collections import deque
