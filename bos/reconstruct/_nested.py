@@ -87,6 +87,7 @@ def _child_sig(sig, split, k):
 
 
 _NO_CHILD = (np.zeros((0, 0, 0)), np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
+"""Stand-in for a child's (Schur complements or update vectors, positions, slot map) at the leaves."""
 
 
 class GridCholesky:
@@ -192,7 +193,7 @@ class GridCholesky:
                     for csig, pos, m in g.maps:
                         kids += [up[csig], pos, m]
                     if not kids:
-                        kids = [*_NO_CHILD_VEC, *_NO_CHILD_VEC]
+                        kids = [*_NO_CHILD, *_NO_CHILD]
                     y = np.empty((nbox, nS, k))
                     u = np.empty((nbox, nB, k))
                     _run(pool, kern.forward_boxes, self._ranges(nbox), g.Sidx, r, nB, *kids, Linv, W, y, u)
@@ -215,9 +216,6 @@ def _run(pool, kernel, ranges, *args):
     lo, hi = ranges[-1]
     out = [kernel(lo, hi, *args)]
     return out + [job.result() for job in jobs]
-
-
-_NO_CHILD_VEC = (np.zeros((0, 0, 0)), np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64))
 
 
 @functools.lru_cache(maxsize=2)

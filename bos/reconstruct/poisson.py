@@ -1137,10 +1137,10 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
     sx = np.where(pb.valid, np.nan_to_num(np.broadcast_to(np.asarray(sigma_x, dtype=float), shape)), 0.0)
     acc = np.zeros(shape)
     block = getattr(solve, "block", None)  # direct solver: blocks of right-hand sides, exact
-    STACK = 8  # samples drawn together (bounded temporaries); block sizes are multiples of it
-    chunk = (n_samples if pb.valid.sum() <= MC_ONE_BLOCK_MAX_UNKNOWNS else 2 * STACK) if block is not None else STACK
     n_valid = int(pb.valid.sum())
     rectangle = n_valid == pb.valid.size
+    STACK = 8  # samples drawn together (bounded temporaries); block sizes are multiples of it
+    chunk = (n_samples if n_valid <= MC_ONE_BLOCK_MAX_UNKNOWNS else 2 * STACK) if block is not None else STACK
     if block is not None:  # blocks: level and square in the compressed numbering (no grids per sample)
         level_block = _block_leveler(noise, reference_region)
         acc_c = np.zeros(n_valid)
@@ -1165,9 +1165,6 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
         signs[:, 0] *= sy
         signs[:, 1] *= sx
         return _rhs_stack(noise, signs[:, 0], signs[:, 1])
-
-    def right_hand_sides(count):
-        return list(noise_rhs(count))
 
     def add(phis, done):
         for i, phi in enumerate(phis, start=done - len(phis) + 1):
@@ -1220,7 +1217,7 @@ def _monte_carlo(pb: _Problem, solve, sigma_y, sigma_x, reference_region, *, n_s
                               min(k0 + chunk, n_samples))
                 else:
                     # chunk = STACK: the samples' noise as for blocks; each solved and added in turn
-                    add([solve(r, rtol) for r in right_hand_sides(min(chunk, n_samples - k0))],
+                    add([solve(r, rtol) for r in noise_rhs(min(chunk, n_samples - k0))],
                         min(k0 + chunk, n_samples))
     if block is not None:
         acc = np.full(shape, np.nan)
